@@ -1,0 +1,74 @@
+"""IBM Model 1 kernels (Brown et al. 1993), pure numpy.
+
+Model: p(f_1..f_m | e_0..e_l) = prod_j sum_i t(f_j | e_i) / (l + 1), with e_0 = NULL.
+Posterior of link (i, j): t(f_j | e_i) / sum_i' t(f_j | e_i').
+
+Every function takes a :class:`~spark_align.kernels.ragged.View` and ``t``, a
+float64 array with one probability per dictionary entry (t(gen word | cond
+word) for that entry's key), and loops over nothing but numpy calls.
+"""
+from __future__ import annotations
+
+import numpy as np
+
+from spark_align.kernels.ragged import GenCells, View
+
+
+def link_scores(view: View, t: np.ndarray, gc: GenCells | None = None) -> tuple[GenCells, np.ndarray]:
+    """(links, t of every link): the table lookup, one gather per link."""
+    gc = gc if gc is not None else view.gen_cells()
+    return gc, t[view.cells[gc.flat]]
+
+
+def e_step(view: View, t: np.ndarray, gc: GenCells | None = None) -> tuple[np.ndarray, float]:
+    """Expected counts per dictionary entry and the log-likelihood of the view.
+
+    Returns ``counts`` float64 (len(t),) and ``loglik`` =
+    sum_pairs [sum_j log(sum_i t(f_j|e_i)) - m log(l+1)].
+    """
+    gc, p = link_scores(view, t, gc)
+    denom = np.bincount(gc.token, weights=p, minlength=gc.n_tokens)
+    post = p / denom[gc.token]
+    counts = np.bincount(view.cells[gc.flat], weights=post, minlength=len(t))
+    loglik = float(np.log(denom).sum() - (view.gen_len * np.log(view.cond_len + 1.0)).sum())
+    return counts, loglik
+
+
+def posteriors(view: View, t: np.ndarray, gc: GenCells | None = None) -> tuple[GenCells, np.ndarray]:
+    """Link posteriors, one per link of ``gc`` (they sum to 1 per generated token)."""
+    gc, p = link_scores(view, t, gc)
+    denom = np.bincount(gc.token, weights=p, minlength=gc.n_tokens)
+    return gc, p / denom[gc.token]
+
+
+def pair_loglik(view: View, t: np.ndarray, gc: GenCells | None = None) -> np.ndarray:
+    """log p(gen sentence | cond sentence) of every pair, float64 (n_pairs,)."""
+    gc, p = link_scores(view, t, gc)
+    denom = np.bincount(gc.token, weights=p, minlength=gc.n_tokens)
+    token_pair = np.repeat(np.arange(view.n_pairs), view.gen_len)
+    per_pair = np.bincount(token_pair, weights=np.log(denom), minlength=view.n_pairs)
+    return per_pair - view.gen_len * np.log(view.cond_len + 1.0)
+
+
+def argmax_per_token(gc: GenCells, score: np.ndarray) -> np.ndarray:
+    """Best cond position (0 = NULL) of each token; ties go to the later position."""
+    if gc.n_tokens == 0:
+        return np.zeros(0, dtype=np.int64)
+    starts = np.flatnonzero(np.r_[True, gc.token[1:] != gc.token[:-1]])
+    best = np.maximum.reduceat(score, starts)
+    is_best = score == best[gc.token]
+    marked = np.where(is_best, gc.cond_pos, -1)
+    return np.maximum.reduceat(marked, starts)
+
+
+def viterbi(view: View, t: np.ndarray, gc: GenCells | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """Most probable cond position per generated token and its posterior.
+
+    Under Model 1 links are independent, so the Viterbi alignment is the
+    per-token argmax of the posterior. Returns (best_pos int64, best_post float64),
+    each (n_gen_tokens,), position 0 meaning NULL.
+    """
+    gc, post = posteriors(view, t, gc)
+    best = argmax_per_token(gc, post)
+    link_offsets = np.flatnonzero(np.r_[True, gc.token[1:] != gc.token[:-1]]) if gc.n_tokens else np.zeros(0, np.int64)
+    return best, post[link_offsets + best] if gc.n_tokens else np.zeros(0)

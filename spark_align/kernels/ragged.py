@@ -1,0 +1,222 @@
+"""Ragged-array layout shared by every kernel (pure numpy; never imports pyspark).
+
+A *block* is a group of sentence pairs encoded once, when the corpus is ingested:
+
+``src_offsets`` int64 (n_pairs + 1,), ``src_ids`` int32 (n_src_tokens,)
+    Source tokens of every pair, flat, with CSR offsets. No NULL token is stored.
+``tgt_offsets`` int64 (n_pairs + 1,), ``tgt_ids`` int32 (n_tgt_tokens,)
+    The same for the target side.
+``dict_keys`` int64 (n_dict,), sorted, unique
+    The block's *pair dictionary*: every (source word, target word) pair that
+    co-occurs in some sentence pair of the block, as ``src_id << 32 | tgt_id``,
+    plus the NULL pairs ``(NULL, f)`` and ``(e, NULL)``. ``NULL_ID == 0`` on both
+    sides, so key 0 ``(NULL, NULL)`` is always entry 0.
+``grid_offsets`` int64 (n_pairs + 1,), ``grid`` int32 (sum of (l+1)(m+1),)
+    For a pair with l source and m target tokens, ``(l+1) * (m+1)`` dictionary
+    indices, row-major over (i in 0..l, j in 0..m); row 0 is the source NULL,
+    column 0 the target NULL, and cell (0, 0) points at entry 0.
+
+Why: looking up each link's current probability is the expensive part of an
+E-step. The grid turns that lookup into one gather ``probs[grid]`` from an
+array of n_dict floats that fits in cache; the sort that builds it runs once at
+ingestion, not once per iteration. Both directions share one grid (the reverse
+direction reads it transposed), and per-block dictionaries are exactly the
+parameter slice a block needs, so tables can be shipped per block.
+
+A *view* is a block seen from one direction: ``cond`` is the conditioning side
+(rows, with NULL at row 0) and ``gen`` the generated side (columns 1..m; column
+0 is ignored). The forward direction p(target | source) uses the grid as is;
+the reverse direction p(source | target) uses the transposed grid.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+NULL_ID = 0
+
+
+def lengths(offsets: np.ndarray) -> np.ndarray:
+    """Row lengths (int64) of a CSR offsets array."""
+    return np.diff(offsets).astype(np.int64, copy=False)
+
+
+def offsets_from_lengths(lens: np.ndarray) -> np.ndarray:
+    """CSR offsets (int64, length n+1) for rows of the given lengths."""
+    out = np.zeros(len(lens) + 1, dtype=np.int64)
+    np.cumsum(lens, out=out[1:])
+    return out
+
+
+def row_of(offsets: np.ndarray) -> np.ndarray:
+    """For every element of a CSR array, the index of its row (int64)."""
+    lens = lengths(offsets)
+    return np.repeat(np.arange(len(lens), dtype=np.int64), lens)
+
+
+def position_in_row(offsets: np.ndarray) -> np.ndarray:
+    """For every element of a CSR array, its position within its row (int64)."""
+    n = int(offsets[-1])
+    return np.arange(n, dtype=np.int64) - np.repeat(offsets[:-1], lengths(offsets))
+
+
+def make_key(src_ids: np.ndarray, tgt_ids: np.ndarray) -> np.ndarray:
+    """Pair keys ``src << 32 | tgt`` (int64)."""
+    return (src_ids.astype(np.int64) << 32) | tgt_ids.astype(np.int64)
+
+
+def split_key(keys: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Inverse of :func:`make_key`: (src_ids, tgt_ids), both int32."""
+    return (keys >> 32).astype(np.int32), (keys & 0xFFFFFFFF).astype(np.int32)
+
+
+@dataclass(frozen=True)
+class Block:
+    """One encoded block of sentence pairs (see the module docstring)."""
+
+    src_offsets: np.ndarray
+    src_ids: np.ndarray
+    tgt_offsets: np.ndarray
+    tgt_ids: np.ndarray
+    dict_keys: np.ndarray
+    grid_offsets: np.ndarray
+    grid: np.ndarray
+
+    @property
+    def n_pairs(self) -> int:
+        return len(self.src_offsets) - 1
+
+    def view(self, direction: str) -> "View":
+        """The block seen from ``direction`` ('forward' or 'reverse')."""
+        src_len, tgt_len = lengths(self.src_offsets), lengths(self.tgt_offsets)
+        if direction == "forward":
+            return View(src_len, tgt_len, self.grid_offsets, self.grid,
+                        self.src_offsets, self.src_ids, self.tgt_offsets, self.tgt_ids)
+        if direction == "reverse":
+            return View(tgt_len, src_len, self.grid_offsets, transpose_grid(src_len, tgt_len, self.grid_offsets, self.grid),
+                        self.tgt_offsets, self.tgt_ids, self.src_offsets, self.src_ids)
+        raise ValueError(f"direction must be 'forward' or 'reverse', not {direction!r}")
+
+
+@dataclass(frozen=True)
+class View:
+    """A block from one direction: ``cells`` is row-major (cond_len+1) x (gen_len+1)."""
+
+    cond_len: np.ndarray      # int64 (n_pairs,)
+    gen_len: np.ndarray       # int64 (n_pairs,)
+    cell_offsets: np.ndarray  # int64 (n_pairs + 1,)
+    cells: np.ndarray         # int32 dictionary indices
+    cond_offsets: np.ndarray
+    cond_ids: np.ndarray
+    gen_offsets: np.ndarray
+    gen_ids: np.ndarray
+
+    @property
+    def n_pairs(self) -> int:
+        return len(self.cond_len)
+
+    def gen_cells(self) -> "GenCells":
+        """Index arrays of the cells that matter: columns 1..gen_len of every row."""
+        return gen_cells(self.cond_len, self.gen_len, self.cell_offsets)
+
+
+@dataclass(frozen=True)
+class GenCells:
+    """Flat description of every (gen token, cond position) link of a view.
+
+    ``flat``: int64 (n_links,) index into ``cells``; ``token``: int64 (n_links,)
+    index of the generated token (0..n_gen_tokens-1, in pair order);
+    ``cond_pos``: int64 (n_links,) row 0..l (0 = NULL); links are ordered by
+    token, then by cond_pos.
+    """
+
+    flat: np.ndarray
+    token: np.ndarray
+    cond_pos: np.ndarray
+    n_tokens: int
+
+
+def gen_cells(cond_len: np.ndarray, gen_len: np.ndarray, cell_offsets: np.ndarray) -> GenCells:
+    """Enumerate links token-major without a Python loop over tokens."""
+    n_tokens_per_pair = gen_len
+    token_offsets = offsets_from_lengths(n_tokens_per_pair)
+    n_tokens = int(token_offsets[-1])
+    token_pair = np.repeat(np.arange(len(gen_len), dtype=np.int64), n_tokens_per_pair)
+    token_j = np.arange(n_tokens, dtype=np.int64) - token_offsets[token_pair] + 1  # 1..m
+    rows_per_token = cond_len[token_pair] + 1
+    link_offsets = offsets_from_lengths(rows_per_token)
+    n_links = int(link_offsets[-1])
+    token = np.repeat(np.arange(n_tokens, dtype=np.int64), rows_per_token)
+    cond_pos = np.arange(n_links, dtype=np.int64) - link_offsets[token]
+    pair = token_pair[token]
+    flat = cell_offsets[pair] + cond_pos * (gen_len[pair] + 1) + token_j[token]
+    return GenCells(flat=flat, token=token, cond_pos=cond_pos, n_tokens=n_tokens)
+
+
+def transpose_grid(src_len: np.ndarray, tgt_len: np.ndarray, grid_offsets: np.ndarray,
+                   grid: np.ndarray) -> np.ndarray:
+    """Grid re-laid row-major over (j in 0..m, i in 0..l) for the reverse direction."""
+    rows, cols = src_len + 1, tgt_len + 1
+    n = int(grid_offsets[-1])
+    pair = row_of(grid_offsets)
+    pos = np.arange(n, dtype=np.int64) - grid_offsets[pair]
+    # Element k of the transposed grid sits at (j, i) = divmod(k, l+1) and reads (i, j).
+    j, i = np.divmod(pos, rows[pair])
+    return grid[grid_offsets[pair] + i * cols[pair] + j]
+
+
+def build_block(src_offsets: np.ndarray, src_ids: np.ndarray,
+                tgt_offsets: np.ndarray, tgt_ids: np.ndarray) -> Block:
+    """Encode pairs into a :class:`Block` (dictionary and grid) without token loops."""
+    src_offsets = np.asarray(src_offsets, dtype=np.int64)
+    tgt_offsets = np.asarray(tgt_offsets, dtype=np.int64)
+    src_ids = np.asarray(src_ids, dtype=np.int32)
+    tgt_ids = np.asarray(tgt_ids, dtype=np.int32)
+    src_len, tgt_len = lengths(src_offsets), lengths(tgt_offsets)
+    rows, cols = src_len + 1, tgt_len + 1
+    grid_offsets = offsets_from_lengths(rows * cols)
+    n = int(grid_offsets[-1])
+    pair = row_of(grid_offsets)
+    pos = np.arange(n, dtype=np.int64) - grid_offsets[pair]
+    i, j = np.divmod(pos, cols[pair])
+    # Source word at row i (NULL at row 0); target word at column j (NULL at column 0).
+    src_word = np.where(i > 0, src_ids[np.maximum(src_offsets[pair] + i - 1, 0)] if len(src_ids) else 0, 0)
+    tgt_word = np.where(j > 0, tgt_ids[np.maximum(tgt_offsets[pair] + j - 1, 0)] if len(tgt_ids) else 0, 0)
+    keys = make_key(src_word, tgt_word)
+    dict_keys, inverse = np.unique(np.concatenate([np.zeros(1, np.int64), keys]), return_inverse=True)
+    grid = inverse[1:].astype(np.int32)
+    return Block(src_offsets, src_ids, tgt_offsets, tgt_ids, dict_keys, grid_offsets, grid)
+
+
+def check_block(block: Block, *, full: bool = False) -> None:
+    """Validate a block: O(1) shape checks always, O(n) scans when ``full``."""
+    n = block.n_pairs
+    for name in ("tgt_offsets", "grid_offsets"):
+        if len(getattr(block, name)) != n + 1:
+            raise ValueError(f"{name} has {len(getattr(block, name))} entries, expected {n + 1}")
+    if int(block.src_offsets[-1]) != len(block.src_ids) or int(block.tgt_offsets[-1]) != len(block.tgt_ids):
+        raise ValueError("token offsets do not end at the number of tokens")
+    if int(block.grid_offsets[-1]) != len(block.grid):
+        raise ValueError("grid offsets do not end at the grid size")
+    if len(block.dict_keys) == 0 or block.dict_keys[0] != 0:
+        raise ValueError("dictionary entry 0 must be the (NULL, NULL) key")
+    if full:
+        expect = (lengths(block.src_offsets) + 1) * (lengths(block.tgt_offsets) + 1)
+        if not np.array_equal(lengths(block.grid_offsets), expect):
+            raise ValueError("grid sizes are not (l+1)*(m+1)")
+        if len(block.grid) and (block.grid.min() < 0 or block.grid.max() >= len(block.dict_keys)):
+            raise ValueError("grid index outside the dictionary")
+        if np.any(np.diff(block.dict_keys) <= 0):
+            raise ValueError("dictionary keys are not sorted and unique")
+
+
+def lookup(table_keys: np.ndarray, table_values: np.ndarray, keys: np.ndarray,
+           default: float) -> np.ndarray:
+    """Values of ``keys`` in a sorted key table; ``default`` where a key is absent."""
+    if len(table_keys) == 0:
+        return np.full(len(keys), default, dtype=np.float64)
+    pos = np.searchsorted(table_keys, keys)
+    pos_c = np.minimum(pos, len(table_keys) - 1)
+    found = table_keys[pos_c] == keys
+    return np.where(found, table_values[pos_c], default)

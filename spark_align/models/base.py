@@ -1,0 +1,57 @@
+"""The model interface the EM engine drives.
+
+The engine (``spark_align.engine``) owns the loop, the lexical table and Spark;
+a model owns only its maths, through pure kernels:
+
+* the lexical table t(gen word | cond word) is shared by all models: the engine
+  looks it up per block dictionary entry and passes it in as ``t`` (float64,
+  one value per dictionary entry); the model returns expected ``counts`` per
+  entry, and the engine sums and normalises them in Spark;
+* a model may have small *dense* parameters (alignment or jump tables, a
+  tension): ``init_dense`` makes them, ``e_step`` returns their sufficient
+  statistics as one float64 vector of length ``dense_size()`` (summed exactly
+  across blocks by the engine), and ``m_step_dense`` turns the summed vector
+  into new dense parameters on the driver. Dense parameters are a
+  ``dict[str, numpy array]`` small enough to live in a JSON manifest.
+"""
+from __future__ import annotations
+
+from typing import ClassVar, Protocol
+
+import numpy as np
+
+from spark_align.kernels.ragged import View
+
+Dense = dict[str, np.ndarray]
+
+
+class AlignmentModel(Protocol):
+    """What a model kind provides. Options come from the stage configuration."""
+
+    name: ClassVar[str]
+    kernel_version: ClassVar[str]
+
+    def dense_size(self) -> int:
+        """Length of the dense statistics vector returned by :meth:`e_step`."""
+
+    def init_dense(self, previous: Dense | None) -> Dense:
+        """Initial dense parameters; ``previous`` is the last stage's (may be another model's)."""
+
+    def e_step(self, view: View, t: np.ndarray, dense: Dense) -> tuple[np.ndarray, np.ndarray, float]:
+        """(lexical counts float64 (len(t),), dense stats float64 (dense_size(),), log-likelihood)."""
+
+    def m_step_dense(self, stats: np.ndarray, dense: Dense) -> Dense:
+        """New dense parameters from the dense statistics summed over the corpus."""
+
+    def decode(self, view: View, t: np.ndarray, dense: Dense, *, method: str,
+               threshold: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Chosen links: (gen token index int64, cond position int64 >= 1, posterior float64).
+
+        ``method`` is 'viterbi' (one link or NULL per generated token; NULL links are
+        dropped) or 'posterior' (every link whose posterior >= threshold). Token
+        indices count generated tokens of the view in pair order from 0; cond
+        positions count from 1 (0 would be NULL and is never returned).
+        """
+
+    def pair_loglik(self, view: View, t: np.ndarray, dense: Dense) -> np.ndarray:
+        """log p(gen sentence | cond sentence) per pair, float64 (n_pairs,)."""
