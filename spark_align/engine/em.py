@@ -1,0 +1,198 @@
+"""The EM driver loop: E-step job, exact reduction, M-step, checkpoint, progress line.
+
+Per iteration: one pass over the encoded blocks (both directions at once),
+one shuffle of (dir, src, tgt) partial counts, one window to normalise per
+conditioning word, one Parquet write of the new table, and a JSON manifest
+written last (the commit). The driver holds the whole table only to broadcast
+it (see ``engine.tables``); it never turns it into Python objects.
+"""
+from __future__ import annotations
+
+import time
+from collections.abc import Callable
+from dataclasses import dataclass
+
+import numpy as np
+
+from spark_align.config import RunConfig
+from spark_align.engine import tables as tables_mod
+from spark_align.engine.estep import DENSE, SCALAR, STATS_SCHEMA, from_fixed, make_estep
+from spark_align.errors import NumericalError
+from spark_align.store import FORMAT_VERSION, RunStore
+
+LEX_SCHEMA_COLUMNS = ("dir", "src", "tgt", "prob")
+
+
+@dataclass
+class TrainState:
+    """Where training stands: the last committed (stage, iteration) and its parameters."""
+
+    stage_index: int
+    iteration: int          # 0 = the stage's starting point (no iteration done yet)
+    table_path: str | None  # checkpoint table; None means the uniform initial table
+    dense: dict[str, dict]  # direction -> dense params (numpy arrays)
+
+
+def dense_to_json(dense: dict[str, dict]) -> dict:
+    return {d: {k: np.asarray(v).tolist() for k, v in params.items()} for d, params in dense.items()}
+
+
+def dense_from_json(obj: dict) -> dict[str, dict]:
+    return {d: {k: np.asarray(v, dtype=np.float64) for k, v in params.items()} for d, params in obj.items()}
+
+
+def m_step(spark, stats_df, directions):
+    """Sum the E-step rows exactly; returns (normalised table DataFrame, dense/scalar sums per direction)."""
+    from pyspark.sql import Window
+    from pyspark.sql import functions as F
+
+    agg = stats_df.groupBy("dir", "src", "tgt").agg(F.sum("hi").alias("hi"), F.sum("lo").alias("lo"))
+    agg = agg.persist()
+    small = agg.filter(F.col("src") < 0).collect()
+    dense_sums: dict[str, dict] = {d: {"dense": {}, "scalar": {}} for d in directions}
+    for row in small:
+        d = tables_mod.DIRS[row["dir"]]
+        kind = "dense" if row["src"] == DENSE else "scalar"
+        dense_sums[d][kind][row["tgt"]] = float(from_fixed(np.int64(row["hi"]), np.int64(row["lo"])))
+    lex = agg.filter(F.col("src") >= 0).withColumn(
+        "cond", F.when(F.col("dir") == 0, F.col("src")).otherwise(F.col("tgt")))
+    per_cond = Window.partitionBy("dir", "cond")
+    total = from_fixed(F.sum("hi").over(per_cond).cast("double"), F.sum("lo").over(per_cond).cast("double"))
+    count = from_fixed(F.col("hi").cast("double"), F.col("lo").cast("double"))
+    table = lex.select("dir", "src", "tgt",
+                       F.greatest(count / total, F.lit(tables_mod.MIN_PROB)).alias("prob"))
+    return agg, table, dense_sums
+
+
+def init_table(spark, blocks_df, directions, init: str, seed: int, src_vocab: int, tgt_vocab: int):
+    """Initial table as a DataFrame: uniform (1/|V|) or seeded random, normalised per cond word."""
+    from pyspark.sql import Window
+    from pyspark.sql import functions as F
+
+    keys = blocks_df.select(F.explode("dict_keys").alias("key")).distinct()
+    keys = keys.select((F.col("key") >> 32).cast("int").alias("src"),
+                       (F.col("key").bitwiseAND(F.lit(0xFFFFFFFF))).cast("int").alias("tgt"))
+    frames = []
+    for d in directions:
+        di = tables_mod.DIRS.index(d)
+        kept = keys.filter(F.col("tgt") != 0) if d == "forward" else keys.filter(F.col("src") != 0)
+        kept = kept.withColumn("dir", F.lit(di).cast("byte"))
+        if init == "uniform":
+            value = F.lit(1.0 / (tgt_vocab if d == "forward" else src_vocab))
+            frames.append(kept.select("dir", "src", "tgt", value.alias("prob")))
+            continue
+        raw = (F.shiftrightunsigned(F.xxhash64("src", "tgt", F.lit(seed), F.lit(di)), 11).cast("double")
+               / float(2 ** 53) + 1e-3)
+        cond = "src" if d == "forward" else "tgt"
+        frames.append(kept.withColumn("raw", raw).select(
+            "dir", "src", "tgt", (F.col("raw") / F.sum("raw").over(Window.partitionBy(cond))).alias("prob")))
+    out = frames[0]
+    for f in frames[1:]:
+        out = out.unionByName(f)
+    return out
+
+
+class Trainer:
+    """Runs the stages of a :class:`RunConfig` over an ingested run directory."""
+
+    def __init__(self, spark, cfg: RunConfig, store: RunStore, encoded: dict,
+                 *, fingerprint: str, log: Callable[[str], None] = print) -> None:
+        self.spark, self.cfg, self.store, self.encoded = spark, cfg, store, encoded
+        self.fingerprint, self.log = fingerprint, log
+        self.directions = cfg.direction_list
+        self.n_words = {"forward": encoded["n_tgt_tokens"], "reverse": encoded["n_src_tokens"]}
+
+    def blocks(self):
+        return self.spark.read.parquet(self.store.spark_path("encoded", "blocks"))
+
+    # -- one iteration -------------------------------------------------------------------
+    def iterate(self, model, state: TrainState) -> tuple[str, dict, dict]:
+        """One EM iteration from ``state``; returns (table path, new dense, metrics)."""
+        sc = self.spark.sparkContext
+        src_v, tgt_v = self.encoded["src_vocab_size"], self.encoded["tgt_vocab_size"]
+        if state.table_path is None:
+            tables = tables_mod.uniform_tables(self.directions, src_v, tgt_v)
+        else:
+            tables = tables_mod.read_tables(self.spark, state.table_path, self.directions)
+        tables_bc = sc.broadcast(tables)
+        try:
+            estep = make_estep(model, self.directions, tables_bc, state.dense)
+            stats = self.blocks().mapInArrow(estep, STATS_SCHEMA)
+            agg, table, sums = m_step(self.spark, stats, self.directions)
+            stage = self.cfg.stages[state.stage_index]
+            rel = RunStore.checkpoint_dir(state.stage_index, stage.model, state.iteration + 1)
+            table.write.mode("overwrite").parquet(self.store.spark_path(rel, "lex"))
+            agg.unpersist()
+        finally:
+            tables_bc.unpersist()
+        new_dense, metrics = {}, {}
+        for d in self.directions:
+            n = model.dense_size()
+            vec = np.array([sums[d]["dense"].get(k, 0.0) for k in range(n)])
+            new_dense[d] = model.m_step_dense(vec, state.dense[d])
+            loglik = sums[d]["scalar"].get(0, float("nan"))
+            per_word = loglik / self.n_words[d]
+            if not np.isfinite(per_word):
+                raise NumericalError(f"{stage.model} iteration {state.iteration + 1} ({d}): "
+                                     f"log-likelihood is {loglik}")
+            metrics[d] = {"loglik": loglik, "loglik_per_word": per_word, "perplexity": float(np.exp(-per_word))}
+        return self.store.spark_path(rel, "lex"), new_dense, metrics
+
+    # -- the loop ----------------------------------------------------------------------
+    def train(self, state: TrainState) -> TrainState:
+        """Run every remaining iteration of every stage, committing a checkpoint after each."""
+        stages = self.cfg.stages
+        total_left = sum(s.n_iter for s in stages[state.stage_index:]) - state.iteration
+        durations: list[float] = []
+        while state.stage_index < len(stages):
+            stage = stages[state.stage_index]
+            model = stage.build()
+            if state.iteration >= stage.n_iter:
+                if state.stage_index + 1 == len(stages):
+                    break
+                next_model = stages[state.stage_index + 1].build()
+                state = TrainState(state.stage_index + 1, 0, state.table_path,
+                                   {d: next_model.init_dense(state.dense.get(d)) for d in self.directions})
+                continue
+            if state.iteration == 0 and not state.dense:
+                state.dense = {d: model.init_dense(None) for d in self.directions}
+            started = time.time()
+            table_path, new_dense, metrics = self.iterate(model, state)
+            seconds = time.time() - started
+            durations.append(seconds)
+            total_left -= 1
+            iteration = state.iteration + 1
+            self._commit(state.stage_index, stage.model, iteration, stage.n_iter, metrics, new_dense, seconds)
+            self.log(progress_line(stage.model, state.stage_index, iteration, stage.n_iter, metrics,
+                                   seconds, total_left, float(np.mean(durations))))
+            state = TrainState(state.stage_index, iteration, table_path, new_dense)
+        return state
+
+    def _commit(self, stage_index, model_name, iteration, n_iter, metrics, dense, seconds) -> None:
+        rel = RunStore.checkpoint_dir(stage_index, model_name, iteration)
+        files = self.store.files(rel, "lex")
+        self.store.write_json(f"{rel}/manifest.json", {
+            "format_version": FORMAT_VERSION,
+            "stage_index": stage_index,
+            "stage": model_name,
+            "iteration": iteration,
+            "stage_iterations": n_iter,
+            "directions": list(self.directions),
+            "metrics": metrics,
+            "dense": dense_to_json(dense),
+            "seconds": seconds,
+            "table": {"path": "lex", "files": files},
+            "config": self.cfg.to_dict(),
+            "corpus_fingerprint": self.fingerprint,
+            "committed_at": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+        })
+
+
+def progress_line(model: str, stage_index: int, iteration: int, n_iter: int, metrics: dict,
+                  seconds: float, left: int, mean_seconds: float) -> str:
+    parts = [f"[stage {stage_index + 1} {model} {iteration}/{n_iter}]"]
+    for d, m in metrics.items():
+        parts.append(f"{d}: loglik/word {m['loglik_per_word']:.4f} ppl {m['perplexity']:.2f}")
+    parts.append(f"{seconds:.1f}s")
+    parts.append(f"{left} iteration(s) left, ~{left * mean_seconds:.0f}s" if left else "training done")
+    return " | ".join(parts)

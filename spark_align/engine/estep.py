@@ -1,0 +1,97 @@
+"""E-step as a ``mapInArrow`` over encoded blocks, and the exact reduction of its output.
+
+Each task turns an Arrow batch of block rows into numpy views, looks up its
+blocks' dictionaries in the broadcast table, runs the model's pure kernel per
+direction and emits rows ``(dir, src, tgt, hi, lo)``:
+
+* ``src >= 0``: expected count of the pair (src, tgt) in direction ``dir``;
+* ``src == -1``: entry ``tgt`` of the model's dense statistics vector;
+* ``src == -2``: scalars (``tgt == 0``: log-likelihood).
+
+Counts leave the task as 64-bit fixed point in two parts (``v = hi / 2^20 +
+lo / 2^50``, error below 1e-15 per value) and are summed as integers by
+Spark. Integer sums do not depend on the order in which Spark's shuffle
+delivers partial sums, so a run is bit-for-bit repeatable and does not depend
+on the number of partitions. Limits: |per-block value| < 2^43 and fewer than
+2^33 summands per key.
+"""
+from __future__ import annotations
+
+import os
+
+import numpy as np
+import pyarrow as pa
+
+from spark_align.engine.ingest import blocks_from_batch
+from spark_align.engine.tables import DIRS
+from spark_align.kernels import ragged
+
+STATS_SCHEMA = "dir byte, src int, tgt int, hi long, lo long"
+HI_SCALE = 2.0 ** 20
+LO_SCALE = 2.0 ** 30
+DENSE, SCALAR = -1, -2
+
+# Test-only fault injection: when set (to a directory), the first attempt of every
+# E-step task whose partition index is even raises once. Documented in DEVELOPERS.md.
+FAIL_ONCE_ENV = "SPARK_ALIGN_TEST_FAIL_ESTEP_ONCE"
+
+
+def to_fixed(values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Split float64 values into (hi, lo) int64 so that v ~= hi / 2^20 + lo / 2^50."""
+    scaled = np.asarray(values, dtype=np.float64) * HI_SCALE
+    hi = np.floor(scaled)
+    lo = np.rint((scaled - hi) * LO_SCALE)
+    return hi.astype(np.int64), lo.astype(np.int64)
+
+
+def from_fixed(hi, lo):
+    """Inverse of :func:`to_fixed` for (summed) integers; numpy arrays or Spark columns."""
+    return hi * (1.0 / HI_SCALE) + lo * (1.0 / (HI_SCALE * LO_SCALE))
+
+
+def _maybe_fail() -> None:
+    marker_dir = os.environ.get(FAIL_ONCE_ENV)
+    if not marker_dir:
+        return
+    from pyspark import TaskContext
+
+    ctx = TaskContext.get()
+    if ctx is None or ctx.partitionId() % 2 or ctx.attemptNumber() > 0:
+        return
+    marker = os.path.join(marker_dir, f"stage{ctx.stageId()}-part{ctx.partitionId()}")
+    if not os.path.exists(marker):
+        open(marker, "w").close()
+        raise RuntimeError(f"injected E-step failure ({FAIL_ONCE_ENV}) for partition {ctx.partitionId()}")
+
+
+def make_estep(model, directions: tuple[str, ...], tables_bc, dense: dict[str, dict]):
+    """The ``mapInArrow`` function of one E-step (closes over arrays and small objects only)."""
+
+    def estep(batches):
+        _maybe_fail()
+        tables = tables_bc.value
+        for batch in batches:
+            parts = []
+            for _block_id, _rows, block in blocks_from_batch(batch):
+                src, tgt = ragged.split_key(block.dict_keys)
+                for direction in directions:
+                    d = DIRS.index(direction)
+                    t_local = tables[direction].local(block.dict_keys)
+                    counts, stats, loglik = model.e_step(block.view(direction), t_local, dense[direction])
+                    emitted = (tgt != 0) if direction == "forward" else (src != 0)
+                    n_stats = len(stats)
+                    values = np.concatenate([counts[emitted], stats, [loglik]])
+                    parts.append((
+                        np.full(len(values), d, np.int8),
+                        np.concatenate([src[emitted], np.full(n_stats, DENSE, np.int32), [SCALAR]]).astype(np.int32),
+                        np.concatenate([tgt[emitted], np.arange(n_stats, dtype=np.int32), [0]]).astype(np.int32),
+                        values))
+            if not parts:
+                continue
+            d_col, s_col, t_col, v_col = (np.concatenate(x) for x in zip(*parts))
+            hi, lo = to_fixed(v_col)
+            yield pa.RecordBatch.from_arrays(
+                [pa.array(d_col), pa.array(s_col), pa.array(t_col), pa.array(hi), pa.array(lo)],
+                names=["dir", "src", "tgt", "hi", "lo"])
+
+    return estep

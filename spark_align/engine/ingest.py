@@ -1,0 +1,279 @@
+"""Ingestion as Spark jobs: snapshot, checks, tokens, vocabularies, encoded blocks.
+
+Costs and invariants:
+
+* The input is copied once into ``RUN_DIR/corpus`` with a stable ``_row`` id
+  (line index for text input; Spark's monotonically increasing id, which
+  preserves read order, for Parquet). Every later job, including the output,
+  reads the snapshot, so a run never mixes two versions of its input.
+* Vocabularies are counted in Spark. Ids are assigned by one global sort on
+  (count descending, word); id 0 is NULL on both sides. The id assignment runs
+  in a single task: fine up to tens of millions of distinct words.
+* Encoding ships each vocabulary to the executors as a broadcast hash index
+  (about 100 bytes per word per executor Python worker).
+* Pairs are grouped into blocks of ``block_size`` consecutive ``_row`` ids;
+  each block carries its own pair dictionary and link grid
+  (see ``spark_align.kernels.ragged``): 4 bytes per link cell on disk, built
+  once here so that no E-step ever sorts or hashes.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pyarrow as pa
+
+from spark_align.config import RunConfig
+from spark_align.corpus import text as text_io
+from spark_align.errors import InputError
+from spark_align.kernels import ragged
+from spark_align.store import RunStore
+
+ROW = "_row"
+MONO_PARTITION_SHIFT = 33  # monotonically_increasing_id puts the partition index above bit 33
+
+BLOCK_SCHEMA = ("block_id long, rows array<long>, src_len array<int>, src_ids array<int>, "
+                "tgt_len array<int>, tgt_ids array<int>, dict_keys array<long>, grid array<int>")
+TOKENS_SCHEMA = "_row long, skip_reason string, src array<string>, tgt array<string>"
+
+
+@dataclass(frozen=True)
+class IngestSummary:
+    n_rows: int
+    n_kept: int
+    skipped: dict[str, int]
+    n_src_tokens: int
+    n_tgt_tokens: int
+    src_vocab_size: int
+    tgt_vocab_size: int
+    n_blocks: int
+
+
+def block_id_of(row: np.ndarray, block_size: int) -> np.ndarray:
+    """Block of each ``_row``: consecutive rows of one input partition share a block."""
+    part = row >> MONO_PARTITION_SHIFT
+    index = row & ((1 << MONO_PARTITION_SHIFT) - 1)
+    return (part << MONO_PARTITION_SHIFT) | (index // block_size)
+
+
+# -- snapshot and checks ---------------------------------------------------------------
+def validate(spark, cfg: RunConfig) -> int | None:
+    """Every input check that can fail, run before anything is written.
+
+    Returns the number of lines for text input (None for Parquet).
+    """
+    c = cfg.corpus
+    if c.is_text:
+        return text_io.count_and_check(c.source_text, c.target_text)
+    df = _read_parquet_input(spark, c.path)
+    _check_columns(df, c)
+    if df.limit(1).count() == 0:
+        raise InputError(f"the corpus is empty: {c.path} has no rows")
+    _check_nulls(spark, c)
+    return None
+
+
+def snapshot(spark, cfg: RunConfig, store: RunStore) -> int:
+    """Copy the (validated) input to ``RUN_DIR/corpus`` with ``_row``; returns the row count."""
+    c = cfg.corpus
+    if c.is_text:
+        return text_io.write_text_snapshot(c.source_text, c.target_text, store.fsspec_path("corpus"))
+    from pyspark.sql import functions as F
+
+    out = store.spark_path("corpus")
+    _read_parquet_input(spark, c.path).withColumn(ROW, F.monotonically_increasing_id()) \
+        .write.mode("overwrite").parquet(out)
+    return spark.read.parquet(out).count()
+
+
+def _read_parquet_input(spark, path: str):
+    from pyspark.errors import AnalysisException
+
+    try:
+        return spark.read.parquet(path)
+    except AnalysisException as exc:
+        msg = str(exc).splitlines()[0]
+        if "PATH_NOT_FOUND" in msg or "does not exist" in msg:
+            raise InputError(f"corpus {path}: no such file or directory") from None
+        if "UNABLE_TO_INFER_SCHEMA" in msg:
+            raise InputError(f"corpus {path}: no Parquet data found there (empty directory?)") from None
+        raise InputError(f"corpus {path}: cannot read it as Parquet ({msg})") from None
+    except Exception as exc:  # Py4J errors from unreadable files
+        raise InputError(f"corpus {path}: cannot read it as Parquet ({str(exc).splitlines()[0]})") from None
+
+
+def _check_columns(df, c) -> None:
+    from pyspark.sql.types import StringType
+
+    fields = {f.name: f.dataType for f in df.schema.fields}
+    for role, name in (("source", c.source_column), ("target", c.target_column)):
+        if name not in fields:
+            raise InputError(f"corpus {c.path}: no {role} column {name!r} (columns: {', '.join(fields)}); "
+                             f"use --{role}-column")
+        if not isinstance(fields[name], StringType):
+            raise InputError(f"corpus {c.path}: {role} column {name!r} has type "
+                             f"{fields[name].simpleString()}, expected string")
+    if c.id_column is not None and c.id_column not in fields:
+        raise InputError(f"corpus {c.path}: no id column {c.id_column!r} (columns: {', '.join(fields)})")
+    if ROW in fields:
+        raise InputError(f"corpus {c.path}: column name {ROW!r} is reserved; rename it")
+
+
+def _check_nulls(spark, c) -> None:
+    from pyspark.sql import functions as F
+
+    df = spark.read.parquet(c.path).select(
+        "_metadata.file_path", "_metadata.row_index", c.source_column, c.target_column)
+    bad = df.filter(F.col(c.source_column).isNull() | F.col(c.target_column).isNull())
+    first = bad.limit(1).collect()
+    if first:
+        row = first[0]
+        column = c.source_column if row[c.source_column] is None else c.target_column
+        n_bad = bad.count()
+        raise InputError(f"{row['file_path']} row {row['row_index']}: null in column {column!r} "
+                         f"({n_bad} row(s) with nulls); fill or drop them first")
+
+
+# -- tokens and vocabularies -----------------------------------------------------------
+def tokens_frame(spark, cfg: RunConfig, store: RunStore):
+    """(_row, skip_reason, src tokens, tgt tokens) for every snapshot row."""
+    c = cfg.corpus
+    src_col, tgt_col = ("source", "target") if c.is_text else (c.source_column, c.target_column)
+    snap = spark.read.parquet(store.spark_path("corpus")).select(ROW, src_col, tgt_col)
+    lowercase, max_length, max_ratio = c.lowercase, c.max_length, c.max_ratio
+
+    def tokenize_batches(batches):
+        for batch in batches:
+            src = text_io.tokenize(batch.column(1), lowercase)
+            tgt = text_io.tokenize(batch.column(2), lowercase)
+            n_src = np.diff(src.offsets.to_numpy())
+            n_tgt = np.diff(tgt.offsets.to_numpy())
+            reasons = text_io.skip_reasons(n_src, n_tgt, max_length, max_ratio)
+            yield pa.RecordBatch.from_arrays(
+                [batch.column(0), pa.array(reasons, pa.string()), src, tgt],
+                names=["_row", "skip_reason", "src", "tgt"])
+
+    return snap.mapInArrow(tokenize_batches, TOKENS_SCHEMA)
+
+
+def build_vocab(spark, tokens, side: str, out_path: str):
+    """Count the words of one side (kept pairs only) and assign ids; written to ``out_path``."""
+    from pyspark.sql import Window
+    from pyspark.sql import functions as F
+
+    counts = (tokens.filter(F.col("skip_reason").isNull())
+              .select(F.explode(side).alias("word")).groupBy("word").count())
+    order = Window.orderBy(F.desc("count"), F.asc("word"))
+    vocab = counts.withColumn("id", F.row_number().over(order).cast("int"))  # 1.., 0 is NULL
+    vocab.select("word", "id", "count").write.mode("overwrite").parquet(out_path)
+    return spark.read.parquet(out_path)
+
+
+def load_vocab_index(spark, path: str):
+    """(pandas Index of words ordered by id - 1, size) from a written vocabulary."""
+    import pandas as pd
+
+    table = spark.read.parquet(path).select("word", "id").toArrow().sort_by("id")
+    ids = table.column("id").to_numpy()
+    if len(ids) and not np.array_equal(ids, np.arange(1, len(ids) + 1)):
+        raise InputError(f"vocabulary {path} is damaged: ids are not 1..{len(ids)}")
+    return pd.Index(table.column("word").to_pylist()), len(ids)
+
+
+def encode_blocks(spark, tokens, src_index, tgt_index, block_size: int):
+    """Kept pairs -> one row per block (token ids, pair dictionary, link grid)."""
+    from pyspark.sql import functions as F
+
+    sc = spark.sparkContext
+    src_bc, tgt_bc = sc.broadcast(src_index), sc.broadcast(tgt_index)
+
+    def to_ids(batches):
+        for batch in batches:
+            rows = batch.column(0).to_numpy()
+            out = [pa.array(block_id_of(rows, block_size)), batch.column(0)]
+            for col, bc in ((2, src_bc), (3, tgt_bc)):
+                lists = batch.column(col)
+                ids = bc.value.get_indexer(lists.flatten().to_numpy(zero_copy_only=False)) + 1
+                out.append(pa.ListArray.from_arrays(
+                    pa.array(lists.offsets.to_numpy() - lists.offsets[0].as_py()),
+                    pa.array(ids.astype(np.int32))))
+            yield pa.RecordBatch.from_arrays(out, names=["block_id", "_row", "src_ids", "tgt_ids"])
+
+    encoded = (tokens.filter(F.col("skip_reason").isNull())
+               .mapInArrow(to_ids, "block_id long, _row long, src_ids array<int>, tgt_ids array<int>"))
+    return encoded.groupBy("block_id").applyInArrow(_build_block_table, BLOCK_SCHEMA)
+
+
+def _build_block_table(table: pa.Table) -> pa.Table:
+    table = table.sort_by("_row")
+    src, tgt = table.column("src_ids").combine_chunks(), table.column("tgt_ids").combine_chunks()
+    block = ragged.build_block(_offsets(src), src.flatten().to_numpy(), _offsets(tgt), tgt.flatten().to_numpy())
+    if np.any(block.grid < 0) or len(block.dict_keys) > np.iinfo(np.int32).max:
+        raise ValueError("block dictionary overflow")
+    return pa.table({
+        "block_id": [table.column("block_id")[0].as_py()],
+        "rows": [table.column("_row").to_numpy()],
+        "src_len": [np.diff(block.src_offsets).astype(np.int32)],
+        "src_ids": [block.src_ids],
+        "tgt_len": [np.diff(block.tgt_offsets).astype(np.int32)],
+        "tgt_ids": [block.tgt_ids],
+        "dict_keys": [block.dict_keys],
+        "grid": [block.grid],
+    })
+
+
+def _offsets(lists: pa.ListArray) -> np.ndarray:
+    off = lists.offsets.to_numpy().astype(np.int64)
+    return off - off[0]
+
+
+def blocks_from_batch(batch: pa.RecordBatch) -> list[tuple[int, np.ndarray, ragged.Block]]:
+    """(block_id, rows, Block) for every block row of an Arrow batch, as zero-copy numpy views."""
+    cols = {name: batch.column(i) for i, name in enumerate(batch.schema.names)}
+    out = []
+    for k in range(batch.num_rows):
+        def arr(name: str) -> np.ndarray:
+            lists = cols[name]
+            start, stop = lists.offsets[k].as_py(), lists.offsets[k + 1].as_py()
+            return lists.values.slice(start, stop - start).to_numpy()
+
+        src_len, tgt_len = arr("src_len"), arr("tgt_len")
+        block = ragged.Block(ragged.offsets_from_lengths(src_len), arr("src_ids"),
+                             ragged.offsets_from_lengths(tgt_len), arr("tgt_ids"),
+                             arr("dict_keys"), ragged.offsets_from_lengths((src_len.astype(np.int64) + 1)
+                                                                            * (tgt_len.astype(np.int64) + 1)),
+                             arr("grid"))
+        out.append((cols["block_id"][k].as_py(), arr("rows"), block))
+    return out
+
+
+def ingest(spark, cfg: RunConfig, store: RunStore) -> IngestSummary:
+    """Snapshot, tokens, vocabularies and encoded blocks; returns what it counted."""
+    from pyspark.sql import functions as F
+
+    n_rows = snapshot(spark, cfg, store)
+    tokens = tokens_frame(spark, cfg, store).persist()
+    try:
+        stats = (tokens.groupBy("skip_reason")
+                 .agg(F.count("*").alias("n"), F.sum(F.size("src")).alias("ns"), F.sum(F.size("tgt")).alias("nt"))
+                 .collect())
+        skipped = {r["skip_reason"]: int(r["n"]) for r in stats if r["skip_reason"] is not None}
+        kept = [r for r in stats if r["skip_reason"] is None]
+        n_kept = int(kept[0]["n"]) if kept else 0
+        if n_kept == 0:
+            raise InputError(f"no pair can be trained on: all {n_rows} rows were filtered out "
+                             f"({', '.join(f'{k}: {v}' for k, v in sorted(skipped.items()))})")
+        (tokens.filter(F.col("skip_reason").isNotNull()).select(ROW, "skip_reason")
+         .write.mode("overwrite").parquet(store.spark_path("encoded", "skipped")))
+        build_vocab(spark, tokens, "src", store.spark_path("vocab", "source"))
+        build_vocab(spark, tokens, "tgt", store.spark_path("vocab", "target"))
+        src_index, n_src_vocab = load_vocab_index(spark, store.spark_path("vocab", "source"))
+        tgt_index, n_tgt_vocab = load_vocab_index(spark, store.spark_path("vocab", "target"))
+        blocks = encode_blocks(spark, tokens, src_index, tgt_index, cfg.block_size)
+        blocks.write.mode("overwrite").parquet(store.spark_path("encoded", "blocks"))
+    finally:
+        tokens.unpersist()
+    n_blocks = spark.read.parquet(store.spark_path("encoded", "blocks")).count()
+    return IngestSummary(n_rows=n_rows, n_kept=n_kept, skipped=skipped,
+                         n_src_tokens=int(kept[0]["ns"]), n_tgt_tokens=int(kept[0]["nt"]),
+                         src_vocab_size=n_src_vocab, tgt_vocab_size=n_tgt_vocab, n_blocks=n_blocks)

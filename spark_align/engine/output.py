@@ -1,0 +1,119 @@
+"""Decoding and the output corpus: every input row and column, plus alignments.
+
+One ``mapInArrow`` pass over the encoded blocks decodes each direction with
+the same kernels that trained it, combines the directions, and emits one row
+per kept pair. The rows are joined back to the corpus snapshot on ``_row``
+(skipped rows get a null alignment and their ``skip_reason``) and written to
+``RUN_DIR/output``; ``output.json`` is written last and is the commit: it is
+removed before a new output is written, so a crash mid-write never leaves an
+output that looks complete.
+"""
+from __future__ import annotations
+
+import time
+
+import numpy as np
+import pyarrow as pa
+
+from spark_align.engine.ingest import ROW, blocks_from_batch
+from spark_align.kernels import ragged
+from spark_align.store import FORMAT_VERSION, RunStore
+
+LINK_TYPE = pa.list_(pa.struct([("source", pa.int32()), ("target", pa.int32()), ("posterior", pa.float64())]))
+LINK_SQL = "array<struct<source:int,target:int,posterior:double>>"
+DECODED_SCHEMA = (f"_row long, alignment {LINK_SQL}, alignment_forward {LINK_SQL}, "
+                  f"alignment_reverse {LINK_SQL}, score_forward double, score_reverse double")
+
+
+def directional_links(block: ragged.Block, direction: str, token, cond_pos, post):
+    """Chosen links of one direction as flat (pair, source index, target index, posterior), sorted."""
+    if direction == "forward":  # generated = target tokens, cond = source positions
+        pair = ragged.row_of(block.tgt_offsets)[token]
+        src_i, tgt_j = cond_pos - 1, token - block.tgt_offsets[pair]
+    else:
+        pair = ragged.row_of(block.src_offsets)[token]
+        src_i, tgt_j = token - block.src_offsets[pair], cond_pos - 1
+    order = np.lexsort((tgt_j, src_i, pair))
+    return pair[order], src_i[order], tgt_j[order], post[order]
+
+
+def links_column(n_pairs: int, pair, src_i, tgt_j, post) -> pa.ListArray:
+    """Per-pair lists of (source, target, posterior) structs from flat sorted links."""
+    offsets = np.searchsorted(pair, np.arange(n_pairs + 1)).astype(np.int32)
+    structs = pa.StructArray.from_arrays(
+        [pa.array(src_i.astype(np.int32)), pa.array(tgt_j.astype(np.int32)), pa.array(post.astype(np.float64))],
+        names=["source", "target", "posterior"])
+    return pa.ListArray.from_arrays(pa.array(offsets), structs)
+
+
+def combine(n_pairs: int, block: ragged.Block, fwd, rev, method: str):
+    """Symmetrize the two directions' links for every pair of a block (flat arrays in, out)."""
+    from spark_align import symmetrize
+
+    src_len, tgt_len = ragged.lengths(block.src_offsets), ragged.lengths(block.tgt_offsets)
+    return symmetrize.combine_block(n_pairs, src_len, tgt_len, fwd, rev, method)
+
+
+def make_decoder(model, directions: tuple[str, ...], tables_bc, dense: dict, *, method: str,
+                 threshold: float, symmetrization: str):
+    def decode(batches):
+        tables = tables_bc.value
+        for batch in batches:
+            for _block_id, rows, block in blocks_from_batch(batch):
+                n = block.n_pairs
+                links, scores = {}, {}
+                for direction in directions:
+                    view = block.view(direction)
+                    t_local = tables[direction].local(block.dict_keys)
+                    token, cond_pos, post = model.decode(view, t_local, dense[direction],
+                                                         method=method, threshold=threshold)
+                    links[direction] = directional_links(block, direction, token, cond_pos, post)
+                    scores[direction] = model.pair_loglik(view, t_local, dense[direction]) / np.maximum(view.gen_len, 1)
+                if len(directions) == 2:
+                    sym = combine(n, block, links["forward"], links["reverse"], symmetrization)
+                else:
+                    sym = links[directions[0]]
+                empty = (np.zeros(0, np.int64),) * 3 + (np.zeros(0),)
+                nan = np.full(n, np.nan)
+                yield pa.RecordBatch.from_arrays([
+                    pa.array(rows),
+                    links_column(n, *sym),
+                    links_column(n, *links.get("forward", empty)),
+                    links_column(n, *links.get("reverse", empty)),
+                    pa.array(scores.get("forward", nan)),
+                    pa.array(scores.get("reverse", nan)),
+                ], names=["_row", "alignment", "alignment_forward", "alignment_reverse",
+                          "score_forward", "score_reverse"])
+
+    return decode
+
+
+def write_output(spark, store: RunStore, blocks_df, decoder, *, checkpoint: str, directions, extra: dict) -> dict:
+    """Decode, join to the snapshot, write ``RUN_DIR/output`` and commit ``output.json``."""
+    from pyspark.sql import functions as F
+
+    store.remove("output.json")
+    decoded = blocks_df.mapInArrow(decoder, DECODED_SCHEMA)
+    if len(directions) == 1:
+        other = "alignment_reverse" if directions[0] == "forward" else "alignment_forward"
+        decoded = decoded.drop(other, "score_reverse" if directions[0] == "forward" else "score_forward")
+    snapshot = spark.read.parquet(store.spark_path("corpus"))
+    skipped = spark.read.parquet(store.spark_path("encoded", "skipped"))
+    out = (snapshot.join(decoded, on=ROW, how="left").join(skipped, on=ROW, how="left")
+           .orderBy(ROW))
+    started = time.time()
+    out.write.mode("overwrite").parquet(store.spark_path("output"))
+    written = spark.read.parquet(store.spark_path("output"))
+    counts = written.agg(F.count("*").alias("rows"),
+                         F.count("alignment").alias("aligned"),
+                         F.count("skip_reason").alias("skipped")).collect()[0]
+    manifest = {
+        "format_version": FORMAT_VERSION,
+        "checkpoint": checkpoint,
+        "rows": counts["rows"], "aligned": counts["aligned"], "skipped": counts["skipped"],
+        "files": store.files("output"),
+        "seconds": time.time() - started,
+        **extra,
+    }
+    store.write_json("output.json", manifest)
+    return manifest

@@ -1,0 +1,172 @@
+"""A whole training run: claim the run directory, ingest, train (or resume), write the output."""
+from __future__ import annotations
+
+import dataclasses
+import time
+from collections.abc import Callable
+
+from spark_align.config import RunConfig
+from spark_align.engine import em, ingest, output, tables
+from spark_align.errors import CheckpointError, CheckpointMismatchError, RunDirError
+from spark_align.fingerprint import corpus_fingerprint
+from spark_align.store import FORMAT_VERSION, Checkpoint, RunStore
+
+
+def _diff(old, new, prefix="") -> list[str]:
+    if isinstance(old, dict) and isinstance(new, dict):
+        out = []
+        for key in sorted(set(old) | set(new)):
+            out += _diff(old.get(key), new.get(key), f"{prefix}{key}.")
+        return out
+    return [] if old == new else [f"{prefix.rstrip('.')} was {old!r}, now {new!r}"]
+
+
+def check_compatible(existing: dict, cfg: RunConfig, fingerprint: str, run_dir: str) -> None:
+    """Refuse to resume with another corpus or an incompatible configuration, saying what differs."""
+    if existing.get("format_version", 0) > FORMAT_VERSION:
+        raise CheckpointError(f"{run_dir} was written by a newer spark_align (format "
+                              f"{existing['format_version']} > {FORMAT_VERSION}); upgrade to resume it")
+    if existing.get("corpus_fingerprint") != fingerprint:
+        raise CheckpointMismatchError(f"{run_dir} was trained on a different corpus (fingerprint "
+                                      f"{existing.get('corpus_fingerprint')}, this corpus {fingerprint})")
+    old = RunConfig.from_dict(existing["config"]).training_key()
+    diffs = _diff(old, cfg.training_key())
+    if diffs:
+        raise CheckpointMismatchError(f"{run_dir} has an incompatible configuration: {'; '.join(diffs[:5])}")
+
+
+def verify_checkpoint(store: RunStore, ckpt: Checkpoint) -> str | None:
+    """None if the checkpoint's table files match its manifest, else what is wrong."""
+    if ckpt.manifest.get("format_version", 0) > FORMAT_VERSION:
+        return f"manifest format {ckpt.manifest['format_version']} is newer than this version ({FORMAT_VERSION})"
+    expected = ckpt.manifest.get("table", {}).get("files")
+    if expected is None:
+        return None if ckpt.iteration == 0 and "table" not in ckpt.manifest else "manifest lists no table files"
+    rel = RunStore.checkpoint_dir(ckpt.stage_index, ckpt.model, ckpt.iteration)
+    try:
+        actual = store.files(rel, "lex")
+    except FileNotFoundError:
+        actual = {}
+    if actual != expected:
+        missing = sorted(set(expected) - set(actual))
+        changed = sorted(k for k in expected if k in actual and actual[k] != expected[k])
+        return (f"table files differ from the manifest (missing: {missing[:3]}, "
+                f"wrong size: {changed[:3]})")
+    return None
+
+
+def starting_state(store: RunStore, cfg: RunConfig, resume_from: str | None,
+                   log: Callable[[str], None]) -> em.TrainState | None:
+    """The newest intact checkpoint (or the one named by ``resume_from``); None = start fresh."""
+    ckpts = store.checkpoints()
+    if resume_from is not None:
+        model, _, it = resume_from.partition(":")
+        chosen = [c for c in ckpts if c.model == model and str(c.iteration) == it.strip()]
+        if not chosen:
+            names = ", ".join(c.name for c in ckpts) or "none"
+            raise CheckpointError(f"no committed checkpoint {resume_from!r} (committed: {names})")
+        ckpt = chosen[0]
+        problem = verify_checkpoint(store, ckpt)
+        if problem:
+            raise CheckpointError(f"checkpoint {ckpt.name} is damaged: {problem}")
+        for later in [c for c in ckpts if (c.stage_index, c.iteration) > (ckpt.stage_index, ckpt.iteration)]:
+            store.remove(RunStore.checkpoint_dir(later.stage_index, later.model, later.iteration))
+        log(f"resuming from checkpoint {ckpt.name}; later checkpoints removed")
+        return _state_of(store, ckpt)
+    for ckpt in reversed(ckpts):
+        if ckpt.stage_index >= len(cfg.stages) or cfg.stages[ckpt.stage_index].model != ckpt.model:
+            continue
+        problem = verify_checkpoint(store, ckpt)
+        if problem is None:
+            log(f"resuming after checkpoint {ckpt.name} (stage {ckpt.stage_index + 1})")
+            return _state_of(store, ckpt)
+        log(f"warning: checkpoint {ckpt.name} is damaged ({problem}); falling back to an earlier one")
+    return None
+
+
+def _state_of(store: RunStore, ckpt: Checkpoint) -> em.TrainState:
+    rel = RunStore.checkpoint_dir(ckpt.stage_index, ckpt.model, ckpt.iteration)
+    table = store.spark_path(rel, "lex") if "table" in ckpt.manifest else None
+    return em.TrainState(ckpt.stage_index, ckpt.iteration, table, em.dense_from_json(ckpt.manifest.get("dense", {})))
+
+
+def train(spark, cfg: RunConfig, run_dir: str, *, resume: bool = False, resume_from: str | None = None,
+          log: Callable[[str], None] = print) -> dict:
+    """Train ``cfg`` in ``run_dir``; returns the output manifest (with the run summary)."""
+    started = time.time()
+    store = RunStore(run_dir)
+    continuing = resume or resume_from is not None
+    existing = store.read_json("run.json")
+    if existing is not None and not continuing:
+        raise RunDirError(f"{store.url} already holds a run; add --resume to continue it, "
+                          f"or choose a new --run directory")
+    if existing is None and continuing and store.exists():
+        if store.checkpoints() or store.exists("corpus"):
+            raise RunDirError(f"{store.url} has no run.json: it is not a spark_align run directory")
+    ingest.validate(spark, cfg)
+    fingerprint = corpus_fingerprint(spark, cfg.corpus)
+    if existing is not None:
+        check_compatible(existing, cfg, fingerprint, store.url)
+    else:
+        if store.exists() and store.fs.ls(store.root):
+            raise RunDirError(f"{store.url} is not empty and holds no run; choose an empty or new directory")
+        store.check_writable()
+        store.write_json("run.json", {"format_version": FORMAT_VERSION, "config": cfg.to_dict(),
+                                      "corpus_fingerprint": fingerprint,
+                                      "created_at": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())})
+    encoded = store.read_json("encoded.json")
+    if encoded is None:
+        log(f"ingesting {cfg.corpus.path or cfg.corpus.source_text} ...")
+        summary = ingest.ingest(spark, cfg, store)
+        encoded = dataclasses.asdict(summary)
+        store.write_json("encoded.json", {**encoded, "corpus_fingerprint": fingerprint})
+    log(summary_line(encoded))
+    trainer = em.Trainer(spark, cfg, store, encoded, fingerprint=fingerprint, log=log)
+    state = starting_state(store, cfg, resume_from, log) if continuing else None
+    if state is None:
+        state = em.TrainState(0, 0, None, {})
+        if cfg.init == "random":
+            state = _random_init(spark, cfg, store, trainer, encoded)
+    state = trainer.train(state)
+    last = cfg.stages[state.stage_index]
+    model = last.build()
+    src_v, tgt_v = encoded["src_vocab_size"], encoded["tgt_vocab_size"]
+    tabs = (tables.read_tables(spark, state.table_path, cfg.direction_list) if state.table_path
+            else tables.uniform_tables(cfg.direction_list, src_v, tgt_v))
+    tables_bc = spark.sparkContext.broadcast(tabs)
+    try:
+        decoder = output.make_decoder(model, cfg.direction_list, tables_bc, state.dense, method=cfg.decoding,
+                                      threshold=cfg.posterior_threshold, symmetrization=cfg.symmetrization)
+        manifest = output.write_output(
+            spark, store, trainer.blocks(), decoder, checkpoint=f"{last.model}:{state.iteration}",
+            directions=cfg.direction_list,
+            extra={"config": cfg.to_dict(), "corpus_fingerprint": fingerprint, "summary": encoded,
+                   "stage_index": state.stage_index})
+    finally:
+        tables_bc.unpersist()
+    log(f"output: {store.spark_path('output')} ({manifest['rows']} rows, {manifest['aligned']} aligned, "
+        f"{manifest['skipped']} skipped); total {time.time() - started:.1f}s")
+    return manifest
+
+
+def summary_line(encoded: dict) -> str:
+    skipped = ", ".join(f"{k} {v}" for k, v in sorted(encoded["skipped"].items())) or "none"
+    return (f"corpus: {encoded['n_rows']} pairs, {encoded['n_kept']} kept (skipped: {skipped}); "
+            f"{encoded['n_src_tokens']} source / {encoded['n_tgt_tokens']} target tokens; vocabulary "
+            f"{encoded['src_vocab_size']} source / {encoded['tgt_vocab_size']} target words; "
+            f"{encoded['n_blocks']} blocks")
+
+
+def _random_init(spark, cfg: RunConfig, store: RunStore, trainer: em.Trainer, encoded: dict) -> em.TrainState:
+    stage = cfg.stages[0]
+    rel = RunStore.checkpoint_dir(0, stage.model, 0)
+    table = em.init_table(spark, trainer.blocks(), cfg.direction_list, cfg.init, cfg.seed,
+                          encoded["src_vocab_size"], encoded["tgt_vocab_size"])
+    table.write.mode("overwrite").parquet(store.spark_path(rel, "lex"))
+    model = stage.build()
+    dense = {d: model.init_dense(None) for d in cfg.direction_list}
+    store.write_json(f"{rel}/manifest.json", {
+        "format_version": FORMAT_VERSION, "stage_index": 0, "stage": stage.model, "iteration": 0,
+        "init": cfg.init, "seed": cfg.seed, "dense": em.dense_to_json(dense),
+        "table": {"path": "lex", "files": store.files(rel, "lex")}, "config": cfg.to_dict()})
+    return em.TrainState(0, 0, store.spark_path(rel, "lex"), dense)

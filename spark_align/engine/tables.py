@@ -1,0 +1,63 @@
+"""Getting the lexical table to the E-step tasks (the decision that decides scale).
+
+The table is stored long-form in each checkpoint: rows (dir, src, tgt, prob)
+with dir 0 = forward t(tgt | src) and dir 1 = reverse t(src | tgt); only pairs
+that co-occur in some sentence pair (plus NULL pairs) exist.
+
+Whole-table shipping (this module): the driver reads the checkpoint's table as
+Arrow (through Spark's reader, so any storage URL works), turns each direction
+into two numpy arrays sorted by key (int64 key + float64 probability = 16
+bytes per entry), and broadcasts them. Every executor Python worker holds the
+whole table once per iteration: memory per executor = 16 bytes x table entries
+x Python workers on that executor, and the driver holds one copy while
+broadcasting. Each block then looks up only its own dictionary
+(``searchsorted``, n_dict log(table size) per block per iteration) and runs
+its E-step on that local slice, so the per-link lookup in the kernel is a
+gather from a small array.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from spark_align.kernels import ragged
+
+DIRS = ("forward", "reverse")
+MIN_PROB = 1e-12  # floor applied after each M-step (common practice, no source)
+
+
+@dataclass(frozen=True)
+class DirectionTable:
+    """Sorted keys and their probabilities for one direction, or a constant (uniform init)."""
+
+    keys: np.ndarray | None
+    probs: np.ndarray | None
+    constant: float | None = None
+
+    def local(self, dict_keys: np.ndarray) -> np.ndarray:
+        """Probabilities of a block dictionary's entries (MIN_PROB where a key is unknown)."""
+        if self.constant is not None:
+            return np.full(len(dict_keys), self.constant)
+        return ragged.lookup(self.keys, self.probs, dict_keys, MIN_PROB)
+
+
+def uniform_tables(directions: tuple[str, ...], src_vocab_size: int, tgt_vocab_size: int) -> dict[str, DirectionTable]:
+    """Uniform initial tables: t(f | e) = 1 / |V_f| (the NULL id is not counted)."""
+    size = {"forward": tgt_vocab_size, "reverse": src_vocab_size}
+    return {d: DirectionTable(None, None, 1.0 / size[d]) for d in directions}
+
+
+def read_tables(spark, path: str, directions: tuple[str, ...]) -> dict[str, DirectionTable]:
+    """Load a checkpoint table for broadcasting (see the module docstring for the cost)."""
+    table = spark.read.parquet(path).toArrow()
+    dir_col = table.column("dir").to_numpy()
+    keys_all = ragged.make_key(table.column("src").to_numpy(), table.column("tgt").to_numpy())
+    probs_all = table.column("prob").to_numpy()
+    out = {}
+    for d in directions:
+        sel = dir_col == DIRS.index(d)
+        keys, probs = keys_all[sel], probs_all[sel]
+        order = np.argsort(keys, kind="stable")
+        out[d] = DirectionTable(keys[order], probs[order])
+    return out

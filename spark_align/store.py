@@ -1,0 +1,174 @@
+"""The run directory: layout, small JSON files through fsspec, commit-last checkpoints.
+
+Layout of ``RUN_DIR`` (a local path or any URL both Spark and fsspec understand)::
+
+    run.json                          config, corpus fingerprint, format version
+    corpus/                           snapshot of the input rows + ``_row`` (Parquet)
+    vocab/source/, vocab/target/      word, id, count (Parquet)
+    encoded/blocks/                   encoded blocks (Parquet) + encoded.json
+    checkpoints/SS-MODEL/iter-NNNN/   lex/ (Parquet table) + manifest.json
+    output/                           the output corpus (Parquet) + output.json
+
+Bulk Parquet goes through Spark's readers and writers; the small JSON files
+go through fsspec at the same location. Commit protocol: data first, the JSON
+manifest last. A JSON file is written to a temporary name and moved into place;
+on object stores, where a move is a copy, the single PUT of a small object is
+itself all-or-nothing, so readers see either no manifest or a whole one.
+Anything without a committed manifest is ignored by readers and overwritten.
+"""
+from __future__ import annotations
+
+import json
+import posixpath
+import uuid
+from dataclasses import dataclass
+from typing import Any
+
+import fsspec
+
+from spark_align.errors import CheckpointError, RunDirError
+
+FORMAT_VERSION = 1
+
+# Spark (Hadoop) scheme -> fsspec scheme, where they differ.
+SPARK_TO_FSSPEC = {"s3a": "s3", "s3n": "s3", "gs": "gcs", "abfss": "abfs", "wasbs": "abfs"}
+
+
+def fsspec_url(url: str) -> str:
+    """The fsspec spelling of a Spark/Hadoop URL (``s3a://b/k`` -> ``s3://b/k``)."""
+    scheme, sep, rest = url.partition("://")
+    if not sep:
+        return url
+    return f"{SPARK_TO_FSSPEC.get(scheme, scheme)}://{rest}"
+
+
+@dataclass(frozen=True)
+class Checkpoint:
+    """A committed checkpoint: stage index, model, iteration (1-based within the stage)."""
+
+    stage_index: int
+    model: str
+    iteration: int
+    manifest: dict
+
+    @property
+    def name(self) -> str:
+        return f"{self.model}:{self.iteration}"
+
+
+class RunStore:
+    """Reads and writes one run directory."""
+
+    def __init__(self, run_dir: str) -> None:
+        self.url = run_dir.rstrip("/") or run_dir
+        try:
+            self.fs, self.root = fsspec.core.url_to_fs(fsspec_url(self.url))
+        except (ImportError, ValueError) as exc:
+            raise RunDirError(f"run directory {run_dir}: cannot open it ({exc})") from None
+        if "://" not in self.url:
+            import os
+
+            self.url = os.path.abspath(self.url)
+            self.root = self.url
+
+    # -- paths -------------------------------------------------------------------------
+    def spark_path(self, *parts: str) -> str:
+        """URL of a sub-path as Spark should see it."""
+        return posixpath.join(self.url, *parts)
+
+    def fsspec_path(self, *parts: str) -> str:
+        """URL of a sub-path as fsspec should see it (for pyarrow writers on the driver)."""
+        path = self._path(*parts)
+        return path if "://" not in self.url else self.fs.unstrip_protocol(path)
+
+    def files(self, *parts: str) -> dict[str, int]:
+        """Data files (name -> size in bytes) under a sub-path, skipping hidden/marker files."""
+        base = self._path(*parts)
+        out = {}
+        for path, info in self.fs.find(base, detail=True).items():
+            name = posixpath.relpath(path, base)
+            if not any(seg.startswith(("_", ".")) for seg in name.split("/")):
+                out[name] = int(info["size"])
+        return out
+
+    def _path(self, *parts: str) -> str:
+        return posixpath.join(self.root, *parts)
+
+    def exists(self, *parts: str) -> bool:
+        return self.fs.exists(self._path(*parts))
+
+    def remove(self, *parts: str) -> None:
+        path = self._path(*parts)
+        if self.fs.exists(path):
+            self.fs.rm(path, recursive=True)
+
+    def check_writable(self) -> None:
+        """Fail early, with the path, if the run directory cannot be written."""
+        probe = self._path(f".write-probe-{uuid.uuid4().hex}")
+        try:
+            self.fs.makedirs(self.root, exist_ok=True)
+            with self.fs.open(probe, "w") as fh:
+                fh.write("ok")
+            self.fs.rm(probe)
+        except OSError as exc:
+            raise RunDirError(f"run directory {self.url} is not writable: {exc.strerror or exc}") from None
+
+    # -- small JSON files, committed atomically -----------------------------------------
+    def write_json(self, relpath: str, obj: Any) -> None:
+        path = self._path(relpath)
+        self.fs.makedirs(posixpath.dirname(path), exist_ok=True)
+        tmp = f"{path}.tmp-{uuid.uuid4().hex}"
+        with self.fs.open(tmp, "w") as fh:
+            fh.write(json.dumps(obj, indent=1, sort_keys=True, default=_json_default))
+        self.fs.mv(tmp, path)
+
+    def read_json(self, relpath: str) -> Any:
+        path = self._path(relpath)
+        try:
+            with self.fs.open(path, "r") as fh:
+                return json.load(fh)
+        except FileNotFoundError:
+            return None
+        except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+            raise CheckpointError(f"{self.spark_path(relpath)} is damaged ({exc})") from None
+
+    # -- checkpoints --------------------------------------------------------------------
+    @staticmethod
+    def checkpoint_dir(stage_index: int, model: str, iteration: int) -> str:
+        return f"checkpoints/{stage_index:02d}-{model}/iter-{iteration:04d}"
+
+    def checkpoints(self) -> list[Checkpoint]:
+        """Committed checkpoints (those with a readable manifest), oldest first."""
+        base = self._path("checkpoints")
+        if not self.fs.exists(base):
+            return []
+        found = []
+        for stage_dir in sorted(self.fs.ls(base, detail=False)):
+            stage_name = posixpath.basename(stage_dir.rstrip("/"))
+            idx, _, model = stage_name.partition("-")
+            if not idx.isdigit():
+                continue
+            for it_dir in sorted(self.fs.ls(stage_dir, detail=False)):
+                it_name = posixpath.basename(it_dir.rstrip("/"))
+                if not it_name.startswith("iter-") or not it_name[5:].isdigit():
+                    continue
+                rel = f"checkpoints/{stage_name}/{it_name}/manifest.json"
+                try:
+                    manifest = self.read_json(rel)
+                except CheckpointError:
+                    continue
+                if manifest is None:
+                    continue
+                found.append(Checkpoint(int(idx), model, int(it_name[5:]), manifest))
+        found.sort(key=lambda c: (c.stage_index, c.iteration))
+        return found
+
+
+def _json_default(obj: Any) -> Any:
+    import numpy as np
+
+    if isinstance(obj, np.ndarray):
+        return obj.tolist()
+    if isinstance(obj, np.generic):
+        return obj.item()
+    raise TypeError(f"cannot write {type(obj).__name__} to JSON")
