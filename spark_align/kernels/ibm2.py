@@ -1,0 +1,320 @@
+"""IBM Model 2 kernels, classic and diagonal-favouring, pure numpy.
+
+Both models keep the links of a generated word independent, so every kernel is
+IBM Model 1's with the lexical score ``t`` multiplied by an alignment probability:
+
+    p(f_1..f_m | e_0..e_l) = prod_j sum_{i=0..l} a(i | j, l, m) t(f_j | e_i),  e_0 = NULL.
+
+Classic table, bounded (``cap`` = the ``max_length_cap`` option)
+    For l <= cap and m <= cap, a(i | j, l, m) is one free table entry, exactly
+    as in the classic model. A longer side is read at the capped length on a
+    relative scale: positions 1..L of a side with L > cap fall into ``cap``
+    bins, position p into bin ``(p - 1) * cap // L + 1``, and
+
+        a(i | j, l, m) = q(bin(i) | bin(j), min(l, cap), min(m, cap)) / size(bin(i)),
+
+    with NULL (i = 0) always its own bin of size 1. Dividing by the bin size
+    keeps every a(. | j, l, m) a distribution over 0..l, so the M-step stays the
+    closed-form normalisation of expected counts per (bin(j), l', m') row.
+    The table therefore has sum_{l'=0..cap} (l'+1) * sum_{m'=1..cap} m' entries
+    (48,510 for cap 20), whatever the corpus.
+
+Diagonal-favouring reparameterisation (Dyer, Chahuneau & Smith 2013)
+    a(0 | j, l, m) = p0;  a(i | j, l, m) = (1 - p0) exp(lam h(i,j,l,m)) / Z_lam(j,l,m),
+    h(i, j, l, m) = -|i/l - j/m|, Z summing the numerator over i = 1..l. The only
+    learned parameter is the scalar ``lam``; its M-step maximises
+    lam * E[h] - sum_tokens P(not NULL) log Z_lam, whose derivative needs the
+    posterior non-NULL mass per (j, l, m) context. Those masses are binned
+    like the classic table's rows (exact while l, m <= cap; longer pairs are
+    represented by their capped, relatively-placed context).
+
+A sentence with l = 0 aligns every word to NULL with probability 1.
+"""
+from __future__ import annotations
+
+import numpy as np
+
+from spark_align.kernels.ibm1 import argmax_per_token
+from spark_align.kernels.ragged import GenCells, View, offsets_from_lengths
+
+MIN_PROB = 1e-12
+LAMBDA_MAX = 100.0
+
+
+# ---------------------------------------------------------------- link geometry
+
+def link_geometry(view: View, gc: GenCells) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(j, l, m) of every link of ``gc``: int64 arrays, shape (n_links,); j counts from 1."""
+    token_pair = np.repeat(np.arange(view.n_pairs, dtype=np.int64), view.gen_len)
+    token_offsets = offsets_from_lengths(view.gen_len)
+    token_j = np.arange(gc.n_tokens, dtype=np.int64) - token_offsets[token_pair] + 1
+    pair = token_pair[gc.token]
+    return token_j[gc.token], view.cond_len[pair], view.gen_len[pair]
+
+
+def position_bin(pos: np.ndarray, length: np.ndarray, cap: int) -> np.ndarray:
+    """Bin 1..min(length, cap) of positions 1..length (identity while length <= cap)."""
+    return np.where(length > cap, (pos - 1) * cap // np.maximum(length, 1) + 1, pos)
+
+
+def bin_size(bin_: np.ndarray, length: np.ndarray, cap: int) -> np.ndarray:
+    """How many positions of 1..length fall into ``bin_`` (1 while length <= cap), int64."""
+    def ceil_div(num):
+        return -(-num // cap)
+    return np.where(length > cap, ceil_div(bin_ * length) - ceil_div((bin_ - 1) * length), 1)
+
+
+# ---------------------------------------------------------------- classic table layout
+
+def table_offsets(cap: int) -> tuple[np.ndarray, int]:
+    """Start of every (l', m') block of the table and the table size.
+
+    Returns ``offsets`` int64 (cap+1, cap+1), indexed [l', m'], and ``size``. Block
+    (l', m') holds m' rows (j' = 1..m') of l'+1 entries (i' = 0..l'), so each
+    normalisation row is contiguous; m' = 0 blocks are empty.
+    """
+    lc = np.arange(cap + 1, dtype=np.int64)[:, None]
+    mc = np.arange(cap + 1, dtype=np.int64)[None, :]
+    sizes = ((lc + 1) * mc).ravel()
+    offsets = offsets_from_lengths(sizes)
+    return offsets[:-1].reshape(cap + 1, cap + 1), int(offsets[-1])
+
+
+def table_size(cap: int) -> int:
+    """Number of entries of the alignment table for ``cap``."""
+    return table_offsets(cap)[1]
+
+
+def table_rows(cap: int) -> np.ndarray:
+    """Length l'+1 of every normalisation row, in table order: int64 (n_rows,)."""
+    lc = np.repeat(np.arange(cap + 1, dtype=np.int64), cap + 1)
+    mc = np.tile(np.arange(cap + 1, dtype=np.int64), cap + 1)
+    return np.repeat(lc + 1, mc)
+
+
+def uniform_table(cap: int) -> np.ndarray:
+    """a = 1/(l'+1) everywhere: float64 (table_size(cap),)."""
+    rows = table_rows(cap)
+    return np.repeat(1.0 / rows, rows)
+
+
+def table_index(cond_pos: np.ndarray, j: np.ndarray, l: np.ndarray, m: np.ndarray,
+                cap: int) -> tuple[np.ndarray, np.ndarray]:
+    """Table entry and bin size of links (i, j, l, m): (int64, int64), shape (n_links,)."""
+    offsets, _ = table_offsets(cap)
+    lc, mc = np.minimum(l, cap), np.minimum(m, cap)
+    ib = np.where(cond_pos > 0, position_bin(cond_pos, l, cap), 0)
+    jb = position_bin(j, m, cap)
+    size = np.where(cond_pos > 0, bin_size(ib, l, cap), 1)
+    return offsets[lc, mc] + (jb - 1) * (lc + 1) + ib, size
+
+
+def normalize_table(counts: np.ndarray, previous: np.ndarray, cap: int) -> np.ndarray:
+    """M-step: a = max(count / row total, 1e-12); rows never seen keep ``previous``.
+
+    ``counts``, ``previous``: float64 (table_size(cap),). Returns the same shape.
+    """
+    rows = table_rows(cap)
+    starts = offsets_from_lengths(rows)[:-1]
+    totals = np.add.reduceat(counts, starts) if len(counts) else np.zeros(0)
+    total_per_entry = np.repeat(totals, rows)
+    seen = total_per_entry > 0
+    est = np.divide(counts, total_per_entry, out=np.zeros_like(counts), where=seen)
+    return np.where(seen, np.maximum(est, MIN_PROB), previous)
+
+
+# ---------------------------------------------------------------- shared link kernels
+
+def _gather(view: View, t: np.ndarray, gc: GenCells | None) -> tuple[GenCells, np.ndarray]:
+    gc = gc if gc is not None else view.gen_cells()
+    return gc, t[view.cells[gc.flat]]
+
+
+def link_posteriors(gc: GenCells, score: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(posterior per link, per-token normaliser): post = score / sum over the token's links."""
+    denom = np.bincount(gc.token, weights=score, minlength=gc.n_tokens)
+    return score / denom[gc.token], denom
+
+
+def pair_loglik_from_denom(view: View, denom: np.ndarray) -> np.ndarray:
+    """Sum of log normalisers per pair: float64 (n_pairs,)."""
+    token_pair = np.repeat(np.arange(view.n_pairs, dtype=np.int64), view.gen_len)
+    return np.bincount(token_pair, weights=np.log(denom), minlength=view.n_pairs)
+
+
+def viterbi_from_posteriors(gc: GenCells, post: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Per-token argmax (links are independent): (best_pos int64, its posterior float64), (n_tokens,)."""
+    best = argmax_per_token(gc, post)
+    if gc.n_tokens == 0:
+        return best, np.zeros(0)
+    starts = np.flatnonzero(np.r_[True, gc.token[1:] != gc.token[:-1]])
+    return best, post[starts + best]
+
+
+# ---------------------------------------------------------------- classic Model 2
+
+def align_probs(view: View, gc: GenCells, table: np.ndarray, cap: int) -> tuple[np.ndarray, np.ndarray]:
+    """a(i | j, l, m) of every link and its table entry: (float64, int64), (n_links,)."""
+    j, l, m = link_geometry(view, gc)
+    idx, size = table_index(gc.cond_pos, j, l, m, cap)
+    return table[idx] / size, idx
+
+
+def e_step(view: View, t: np.ndarray, table: np.ndarray, cap: int,
+           gc: GenCells | None = None) -> tuple[np.ndarray, np.ndarray, float]:
+    """Expected lexical counts, expected table counts and log-likelihood.
+
+    post(i, j) = a(i|j,l,m) t(f_j|e_i) / sum_i' a(i'|j,l,m) t(f_j|e_i').
+    Returns ``counts`` float64 (len(t),), ``table_counts`` float64 (len(table),)
+    and ``loglik`` = sum_tokens log sum_i a t.
+    """
+    gc, p = _gather(view, t, gc)
+    a, idx = align_probs(view, gc, table, cap)
+    post, denom = link_posteriors(gc, p * a)
+    counts = np.bincount(view.cells[gc.flat], weights=post, minlength=len(t))
+    table_counts = np.bincount(idx, weights=post, minlength=len(table))
+    return counts, table_counts, float(np.log(denom).sum())
+
+
+def posteriors(view: View, t: np.ndarray, table: np.ndarray, cap: int,
+               gc: GenCells | None = None) -> tuple[GenCells, np.ndarray]:
+    """Link posteriors, float64 (n_links,), summing to 1 per generated token."""
+    gc, p = _gather(view, t, gc)
+    a, _ = align_probs(view, gc, table, cap)
+    return gc, link_posteriors(gc, p * a)[0]
+
+
+def pair_loglik(view: View, t: np.ndarray, table: np.ndarray, cap: int,
+                gc: GenCells | None = None) -> np.ndarray:
+    """log p(gen sentence | cond sentence) per pair, float64 (n_pairs,)."""
+    gc, p = _gather(view, t, gc)
+    a, _ = align_probs(view, gc, table, cap)
+    return pair_loglik_from_denom(view, link_posteriors(gc, p * a)[1])
+
+
+# ---------------------------------------------------------------- diagonal Model 2
+
+def diag_feature(cond_pos: np.ndarray, j: np.ndarray, l: np.ndarray, m: np.ndarray) -> np.ndarray:
+    """h = -|i/l - j/m| for real links (0 for NULL links and l = 0): float64 (n_links,)."""
+    real = cond_pos > 0
+    return np.where(real, -np.abs(cond_pos / np.maximum(l, 1) - j / np.maximum(m, 1)), 0.0)
+
+
+def diag_align_probs(view: View, gc: GenCells, p_null: float, lam: float) -> tuple[np.ndarray, np.ndarray]:
+    """a(i | j, l, m) of every link and the feature h: (float64, float64), (n_links,)."""
+    j, l, m = link_geometry(view, gc)
+    h = diag_feature(gc.cond_pos, j, l, m)
+    real = gc.cond_pos > 0
+    # h <= 0, so exp never overflows; every token with l >= 1 has a link with h >= -1/l.
+    w = np.where(real, np.exp(lam * h), 0.0)
+    z = np.bincount(gc.token, weights=w, minlength=gc.n_tokens)[gc.token]
+    real_part = np.divide((1.0 - p_null) * w, z, out=np.zeros_like(w), where=real)
+    return np.where(real, real_part, np.where(l == 0, 1.0, p_null)), h
+
+
+def diag_context_index(j: np.ndarray, l: np.ndarray, m: np.ndarray, cap: int) -> np.ndarray:
+    """Context (bin(j), min(l,cap), min(m,cap)) of tokens with l >= 1: int64 index into
+    an array of ``diag_n_contexts(cap)``; layout [l'-1][m'-1 block][j'-1]."""
+    lc, mc = np.minimum(l, cap), np.minimum(m, cap)
+    jb = position_bin(j, m, cap)
+    per_l = cap * (cap + 1) // 2
+    return (lc - 1) * per_l + (mc - 1) * mc // 2 + (jb - 1)
+
+
+def diag_n_contexts(cap: int) -> int:
+    return cap * (cap * (cap + 1) // 2)
+
+
+def diag_e_step(view: View, t: np.ndarray, p_null: float, lam: float, cap: int,
+                gc: GenCells | None = None) -> tuple[np.ndarray, float, np.ndarray, float]:
+    """Expected lexical counts, expected feature, non-NULL mass per context, log-likelihood.
+
+    Returns ``counts`` float64 (len(t),); ``feature`` = sum_links post * h;
+    ``mass`` float64 (diag_n_contexts(cap),), the posterior non-NULL mass of each
+    token summed per context; ``loglik``.
+    """
+    gc, p = _gather(view, t, gc)
+    a, h = diag_align_probs(view, gc, p_null, lam)
+    post, denom = link_posteriors(gc, p * a)
+    counts = np.bincount(view.cells[gc.flat], weights=post, minlength=len(t))
+    j, l, m = link_geometry(view, gc)
+    real = gc.cond_pos > 0
+    ctx = diag_context_index(j[real], l[real], m[real], cap)
+    mass = np.bincount(ctx, weights=post[real], minlength=diag_n_contexts(cap))
+    return counts, float(np.dot(post, h)), mass, float(np.log(denom).sum())
+
+
+def diag_posteriors(view: View, t: np.ndarray, p_null: float, lam: float,
+                    gc: GenCells | None = None) -> tuple[GenCells, np.ndarray]:
+    """Link posteriors, float64 (n_links,), summing to 1 per generated token."""
+    gc, p = _gather(view, t, gc)
+    a, _ = diag_align_probs(view, gc, p_null, lam)
+    return gc, link_posteriors(gc, p * a)[0]
+
+
+def diag_pair_loglik(view: View, t: np.ndarray, p_null: float, lam: float,
+                     gc: GenCells | None = None) -> np.ndarray:
+    """log p(gen sentence | cond sentence) per pair, float64 (n_pairs,)."""
+    gc, p = _gather(view, t, gc)
+    a, _ = diag_align_probs(view, gc, p_null, lam)
+    return pair_loglik_from_denom(view, link_posteriors(gc, p * a)[1])
+
+
+def _context_features(cap: int) -> tuple[np.ndarray, np.ndarray]:
+    """h of positions i' = 1..cap for every context, and which i' exist: float64/bool (n_ctx, cap)."""
+    lc, mc, jb = [], [], []
+    for l_ in range(1, cap + 1):
+        for m_ in range(1, cap + 1):
+            lc.append(np.full(m_, l_))
+            mc.append(np.full(m_, m_))
+            jb.append(np.arange(1, m_ + 1))
+    lc, mc, jb = (np.concatenate(x)[:, None] for x in (lc, mc, jb))
+    i = np.arange(1, cap + 1)[None, :]
+    return -np.abs(i / lc - jb / mc), i <= lc
+
+
+def diag_lambda_m_step(feature: float, mass: np.ndarray, lam: float, cap: int, *,
+                       n_iter: int = 60, tol: float = 1e-10) -> float:
+    """lam maximising Q(lam) = lam * feature - sum_ctx mass_ctx log Z_lam(ctx) on [0, LAMBDA_MAX].
+
+    Q is concave (log Z is convex in lam), so Q' = feature - sum mass E_lam[h]
+    decreases and the root is found by Newton steps kept inside a shrinking
+    bracket. ``lam`` (the current value) is only the starting point.
+    """
+    keep = mass > 0
+    if not keep.any():
+        return lam
+    h_all, valid_all = _context_features(cap)
+    h, valid, w = h_all[keep], valid_all[keep], mass[keep]
+
+    def grad_curv(x: float) -> tuple[float, float]:
+        # Shift by the row max so exp never underflows to an all-zero row.
+        s = np.where(valid, x * h, -np.inf)
+        e = np.exp(s - s.max(axis=1, keepdims=True))
+        p = e / e.sum(axis=1, keepdims=True)
+        mean = (p * np.where(valid, h, 0.0)).sum(axis=1)
+        var = (p * np.where(valid, h, 0.0) ** 2).sum(axis=1) - mean ** 2
+        return feature - float(w @ mean), float(w @ np.maximum(var, 0.0))
+
+    lo, hi = 0.0, LAMBDA_MAX
+    g_lo, _ = grad_curv(lo)
+    if g_lo <= 0:
+        return lo
+    g_hi, _ = grad_curv(hi)
+    if g_hi >= 0:
+        return hi
+    x = min(max(lam, lo), hi)
+    for _ in range(n_iter):
+        g, c = grad_curv(x)
+        if g > 0:
+            lo = x
+        else:
+            hi = x
+        step = g / c if c > 0 else np.inf
+        nxt = x + step
+        if not (lo < nxt < hi):
+            nxt = 0.5 * (lo + hi)
+        if abs(nxt - x) < tol:
+            return nxt
+        x = nxt
+    return x
