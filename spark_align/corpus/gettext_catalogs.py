@@ -21,8 +21,9 @@ Catalogs are read with Python's :mod:`gettext` (``GNUTranslations`` and its
   msgid are skipped; compiled catalogs hold no fuzzy entries (the compiler
   leaves them out by default), so none need skipping here;
 * format directives are removed: printf style (``%s``, ``%d``, ``%1$s``,
-  ``%-10.3lf``, ``%'d``), Python style (``%(name)s``) and brace style
-  (``{0}``, ``{name}``); ``%%`` becomes ``%``. They carry no word to align and
+  ``%-10.3lf``, ``%'d``), Python style (``%(name)s``), date style (any
+  ``%`` + letter, as in ``%H:%M``, ``%-d``) and brace style (``{0}``,
+  ``{name}``); ``%%`` becomes ``%``. They carry no word to align and
   their order differs between languages;
 * keyboard mnemonics are removed: a ``&`` right before a letter (not an
   ``&name;`` entity), and an ``_`` right before a letter when it is the
@@ -55,6 +56,8 @@ from collections.abc import Iterable
 
 import pyarrow as pa
 
+from spark_align.errors import ConfigError, InputError
+
 SCHEMA = pa.schema([
     ("id", pa.int64()),
     ("source", pa.string()),
@@ -66,10 +69,15 @@ DEFAULT_LOCALE_DIR = "/usr/share/locale"
 
 _MO_MAGIC = 0x950412DE
 
+
+class CatalogNotFoundError(InputError, FileNotFoundError):
+    """The language directory, or a requested catalog, is not under ``locale_dir``."""
+
 _FORMAT_RE = re.compile(
     r"%\([^)\s]*\)[-+ #0]*\d*(?:\.\d+)?[diouxXeEfFgGcrsa]"                 # %(name)s
     r"|%(?:\d+\$)?[-+ #0']*(?:\d+|\*(?:\d+\$)?)?(?:\.(?:\d+|\*(?:\d+\$)?))?"  # %1$-10.*s
     r"(?:hh|h|ll|l|L|q|j|z|Z|t|I)?[diouxXeEfFgGaAcCsSpnm]"
+    r"|%[-_0^#]?[EO]?[A-Za-z]"                                             # strftime: %H %-d %Ey
     r"|\{\w*\}"                                                            # {0} {name}
 )
 _AMP_MNEMONIC_RE = re.compile(r"&(?=[^\W\d_])(?![^\W_]+;)")
@@ -110,10 +118,10 @@ def normalize(text: str, *, lowercase: bool = True) -> str:
 
 def _catalog_dir(lang: str, locale_dir: str) -> str:
     if not lang or "/" in lang or lang in (".", ".."):
-        raise ValueError(f"lang must be a locale directory name such as 'de' or 'pt_BR', got {lang!r}")
+        raise ConfigError(f"lang must be a locale directory name such as 'de' or 'pt_BR', got {lang!r}")
     path = os.path.join(locale_dir, lang, "LC_MESSAGES")
     if not os.path.isdir(path):
-        raise FileNotFoundError(f"no catalogs for language {lang!r}: {path} is not a directory; "
+        raise CatalogNotFoundError(f"no catalogs for language {lang!r}: {path} is not a directory; "
                                 f"available_languages({locale_dir!r}) lists the languages present")
     return path
 
@@ -174,18 +182,18 @@ def catalog_pairs(lang: str, *, locale_dir: str = DEFAULT_LOCALE_DIR, min_tokens
         ``target`` (translation) space-separated tokens, ``catalog`` file name.
     """
     if isinstance(min_tokens, bool) or not isinstance(min_tokens, int) or min_tokens < 1:
-        raise ValueError(f"min_tokens must be an integer >= 1, got {min_tokens!r}")
+        raise ConfigError(f"min_tokens must be an integer >= 1, got {min_tokens!r}")
     if max_tokens is not None and (not isinstance(max_tokens, int) or max_tokens < min_tokens):
-        raise ValueError(f"max_tokens must be None or an integer >= min_tokens={min_tokens}, got {max_tokens!r}")
+        raise ConfigError(f"max_tokens must be None or an integer >= min_tokens={min_tokens}, got {max_tokens!r}")
     if max_pairs is not None and (not isinstance(max_pairs, int) or max_pairs < 0):
-        raise ValueError(f"max_pairs must be None or a non-negative integer, got {max_pairs!r}")
+        raise ConfigError(f"max_pairs must be None or a non-negative integer, got {max_pairs!r}")
     path = _catalog_dir(lang, locale_dir)
     names = _mo_files(path)
     if catalogs is not None:
         wanted = set(catalogs)
         missing = sorted(wanted - set(names))
         if missing:
-            raise FileNotFoundError(f"catalog(s) {missing} not found in {path}")
+            raise CatalogNotFoundError(f"catalog(s) {missing} not found in {path}")
         names = [name for name in names if name in wanted]
 
     sources: list[str] = []
@@ -258,7 +266,7 @@ def available_languages(locale_dir: str = DEFAULT_LOCALE_DIR) -> list[tuple[str,
     estimate, largest first, then by name; languages with no message are left out.
     """
     if not os.path.isdir(locale_dir):
-        raise FileNotFoundError(f"locale directory {locale_dir} does not exist")
+        raise CatalogNotFoundError(f"locale directory {locale_dir} does not exist")
     found = []
     for lang in sorted(os.listdir(locale_dir)):
         path = os.path.join(locale_dir, lang, "LC_MESSAGES")

@@ -54,6 +54,8 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
+from spark_align.errors import ConfigError, InputError, SparkAlignError
+
 LINK_TYPE = pa.struct([("source", pa.int32()), ("target", pa.int32())])
 SCHEMA = pa.schema([
     ("id", pa.int64()),
@@ -93,13 +95,17 @@ _TGT_NUCLEI = "a e i o u ae ei".split()
 _CHUNK_PAIRS = 250_000
 
 
+class OutputExistsError(SparkAlignError, FileExistsError):
+    """The output directory already holds part files and ``overwrite`` was not given."""
+
+
 # --------------------------------------------------------------------------
 # Configuration
 # --------------------------------------------------------------------------
 
 @dataclass(frozen=True)
 class SyntheticConfig:
-    """Settings of the generator; checked once, when built.
+    """Settings of the generator; checked once, when built (:class:`ConfigError` names the field).
 
     Probabilities are per source word *type* unless said otherwise: a share
     ``particle_frac`` of the non-glossary types delete with probability
@@ -124,24 +130,24 @@ class SyntheticConfig:
     def __post_init__(self) -> None:
         n_tgt_reserved = len(FUNCTION_WORDS) + len(_glossary_targets())
         if self.src_vocab <= len(GLOSSARY):
-            raise ValueError(f"src_vocab={self.src_vocab} must exceed the {len(GLOSSARY)} glossary words; "
+            raise ConfigError(f"src_vocab={self.src_vocab} must exceed the {len(GLOSSARY)} glossary words; "
                              f"use src_vocab >= {len(GLOSSARY) + 1}")
         if self.tgt_vocab <= n_tgt_reserved:
-            raise ValueError(f"tgt_vocab={self.tgt_vocab} must exceed the {n_tgt_reserved} reserved target words "
+            raise ConfigError(f"tgt_vocab={self.tgt_vocab} must exceed the {n_tgt_reserved} reserved target words "
                              f"(function and glossary words); use tgt_vocab >= {n_tgt_reserved + 1}")
         if not 1 <= self.min_len <= self.max_len:
-            raise ValueError(f"need 1 <= min_len <= max_len, got min_len={self.min_len}, max_len={self.max_len}")
+            raise ConfigError(f"need 1 <= min_len <= max_len, got min_len={self.min_len}, max_len={self.max_len}")
         if self.max_len > 1000:
-            raise ValueError(f"max_len={self.max_len} is too long for a sentence; use max_len <= 1000")
+            raise ConfigError(f"max_len={self.max_len} is too long for a sentence; use max_len <= 1000")
         if not self.zipf_a >= 0:
-            raise ValueError(f"zipf_a={self.zipf_a} must be >= 0 (0 gives a uniform vocabulary)")
+            raise ConfigError(f"zipf_a={self.zipf_a} must be >= 0 (0 gives a uniform vocabulary)")
         for name in ("reorder", "far_reorder", "insert_rate", "p_delete", "particle_frac",
                      "particle_delete", "double_frac", "double_rate"):
             value = getattr(self, name)
             if not 0.0 <= value <= 1.0:
-                raise ValueError(f"{name}={value} must be a probability in [0, 1]")
+                raise ConfigError(f"{name}={value} must be a probability in [0, 1]")
         if max(self.p_delete, self.particle_delete) + self.double_rate > 1.0:
-            raise ValueError(f"deletion probability + double_rate must be <= 1, got "
+            raise ConfigError(f"deletion probability + double_rate must be <= 1, got "
                              f"max(p_delete, particle_delete)={max(self.p_delete, self.particle_delete)} "
                              f"+ double_rate={self.double_rate}")
 
@@ -215,8 +221,9 @@ def target_vocabulary(n_words: int) -> tuple[str, ...]:
 
 @dataclass(frozen=True)
 class _Lexicon:
-    """Per source type: trans_ids int32 (V, 3), trans_cdf float64 (V, 3),
-    p_delete float64 (V,), p_double float64 (V,), companion int32 (V,)."""
+    """Per source type (V = src_vocab): trans_ids int32 (V, 3), trans_prob and
+    trans_cdf float64 (V, 3) (unused columns have probability 0), p_delete
+    float64 (V,), p_double float64 (V,), companion int32 (V,)."""
 
     trans_ids: np.ndarray
     trans_prob: np.ndarray
@@ -381,9 +388,9 @@ def generate(n_pairs: int, *, seed: int = 0, **settings) -> pa.Table:
         settings and seed as JSON.
     """
     if isinstance(n_pairs, bool) or not isinstance(n_pairs, (int, np.integer)) or n_pairs < 0:
-        raise ValueError(f"n_pairs must be a non-negative integer, got {n_pairs!r}")
+        raise ConfigError(f"n_pairs must be a non-negative integer, got {n_pairs!r}")
     if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
-        raise ValueError(f"seed must be a non-negative integer, got {seed!r}")
+        raise ConfigError(f"seed must be a non-negative integer, got {seed!r}")
     cfg = SyntheticConfig(**settings)
     lexicon_rng, sentence_seq = _streams(int(seed))
     lex = _build_lexicon(cfg, lexicon_rng)
@@ -426,7 +433,7 @@ def demo_corpus(n_pairs: int = 3000, *, seed: int = 7) -> pa.Table:
 def _check_table(table: pa.Table, columns: tuple[str, ...]) -> None:
     missing = [name for name in columns if name not in table.column_names]
     if missing:
-        raise ValueError(f"table lacks column(s) {missing}; it has {table.column_names}")
+        raise InputError(f"table lacks column(s) {missing}; it has {table.column_names}")
 
 
 def _atomic_write(path: str, write) -> None:
@@ -452,11 +459,11 @@ def write_parquet(table: pa.Table, path: str, *, n_files: int = 1, overwrite: bo
     """
     _check_table(table, ("id", "source", "target"))
     if isinstance(n_files, bool) or not isinstance(n_files, int) or n_files < 1:
-        raise ValueError(f"n_files must be a positive integer, got {n_files!r}")
+        raise ConfigError(f"n_files must be a positive integer, got {n_files!r}")
     os.makedirs(path, exist_ok=True)
     existing = sorted(name for name in os.listdir(path) if name.startswith("part-"))
     if existing and not overwrite:
-        raise FileExistsError(f"{path} already holds {existing[0]} (and {len(existing) - 1} more part files); "
+        raise OutputExistsError(f"{path} already holds {existing[0]} (and {len(existing) - 1} more part files); "
                               "choose an empty directory or pass overwrite=True")
     for name in existing:
         os.unlink(os.path.join(path, name))
@@ -494,7 +501,7 @@ def write_text(table: pa.Table, src_path: str, tgt_path: str, links_path: str | 
         jobs.append((links_path, links_text(table)))
     for path, lines in jobs:
         if any("\n" in line for line in lines):
-            raise ValueError(f"a line of {path} would contain a newline; the table is not tokenised text")
+            raise InputError(f"a line of {path} would contain a newline; the table is not tokenised text")
         text = "".join(line + "\n" for line in lines)
         _atomic_write(path, functools.partial(_write_utf8, text=text))
 
