@@ -150,7 +150,7 @@ class _Group:
     def _forward(self) -> None:
         l, p0 = self.l, self.p_null
         ar = self.e_real[0] * ((1.0 - p0) / l)
-        an = self.e_null[0][:, None] * (p0 / l)
+        an = np.repeat(self.e_null[0][:, None] * (p0 / l), l, axis=1)
         for j in range(self.e_null.shape[0]):
             if j:
                 s = self.alpha_real[j - 1] + self.alpha_null[j - 1]

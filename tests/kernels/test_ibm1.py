@@ -1,0 +1,93 @@
+"""IBM Model 1 kernels against a direct, loop-per-token implementation on small random corpora."""
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+
+from spark_align.kernels import ibm1
+from spark_align.models.ibm1 import IBM1
+from tests.kernels.local_em import cond_gen_words, make_block, random_corpus, run_em
+
+
+def _t_lookup(block, direction, t):
+    cond, gen = cond_gen_words(block, direction)
+    return {(int(c), int(g)): float(p) for c, g, p in zip(cond, gen, t)}
+
+
+def naive_ibm1(pairs, table, direction):
+    """Counts per (cond, gen) word pair, loglik, per-token posteriors over 0..l, per-token argmax."""
+    counts, loglik, posts, best = {}, 0.0, [], []
+    for src, tgt in pairs:
+        cond, gen = (src, tgt) if direction == "forward" else (tgt, src)
+        cond = [0] + list(cond)
+        for f in gen:
+            scores = [table[(e, f)] for e in cond]
+            total = sum(scores)
+            loglik += math.log(total / len(cond))
+            post = [s / total for s in scores]
+            posts.append(post)
+            arg = 0
+            for i, p in enumerate(post):
+                if p >= post[arg]:
+                    arg = i
+            best.append(arg)
+            for e, p in zip(cond, post):
+                counts[(e, f)] = counts.get((e, f), 0.0) + p
+    return counts, loglik, posts, best
+
+
+@pytest.mark.parametrize("seed", range(4))
+@pytest.mark.parametrize("direction", ["forward", "reverse"])
+def test_e_step_matches_loops(seed, direction):
+    rng = np.random.default_rng(seed)
+    pairs = random_corpus(rng, 12, max_len=5, n_src_words=6, n_tgt_words=7)
+    block = make_block(pairs)
+    t = rng.uniform(0.01, 1.0, size=len(block.dict_keys))
+    view = block.view(direction)
+    counts, loglik = ibm1.e_step(view, t)
+    want_counts, want_loglik, want_posts, want_best = naive_ibm1(pairs, _t_lookup(block, direction, t), direction)
+
+    assert loglik == pytest.approx(want_loglik, abs=1e-9)
+    cond, gen = cond_gen_words(block, direction)
+    got = {(int(c), int(g)): x for c, g, x in zip(cond, gen, counts)}
+    for key, x in want_counts.items():
+        assert got[key] == pytest.approx(x, abs=1e-12)
+    # Entries no generated token can use (gen side NULL) get nothing.
+    assert sum(got.values()) == pytest.approx(sum(want_counts.values()), abs=1e-9)
+
+    gc, post = ibm1.posteriors(view, t)
+    assert np.allclose(post, np.concatenate(want_posts), atol=1e-12)
+    assert np.allclose(np.bincount(gc.token, weights=post), 1.0, atol=1e-12)
+
+    best, best_post = ibm1.viterbi(view, t)
+    assert best.tolist() == want_best
+    assert np.allclose(best_post, [p[b] for p, b in zip(want_posts, want_best)])
+
+    per_pair = ibm1.pair_loglik(view, t)
+    assert per_pair.sum() == pytest.approx(want_loglik, abs=1e-9)
+
+
+def test_loglik_never_decreases():
+    for seed in range(5):
+        rng = np.random.default_rng(100 + seed)
+        block = make_block(random_corpus(rng, 25))
+        logliks = run_em(IBM1(), block, 10).logliks
+        assert all(b >= a - 1e-9 for a, b in zip(logliks, logliks[1:])), logliks
+
+
+def test_model_decode_drops_null_and_respects_threshold():
+    rng = np.random.default_rng(7)
+    block = make_block(random_corpus(rng, 10))
+    view = block.view("forward")
+    t = rng.uniform(0.01, 1.0, size=len(block.dict_keys))
+    model = IBM1()
+    tok, pos, post = model.decode(view, t, {}, method="posterior", threshold=0.3)
+    assert (pos >= 1).all() and (post >= 0.3).all()
+    tok_v, pos_v, _ = model.decode(view, t, {}, method="viterbi", threshold=0.0)
+    best, _ = ibm1.viterbi(view, t)
+    assert np.array_equal(pos_v, best[tok_v]) and len(np.unique(tok_v)) == len(tok_v)
+    assert set(range(len(best))) - set(tok_v.tolist()) == set(np.flatnonzero(best == 0).tolist())
+    with pytest.raises(ValueError, match="decoding method"):
+        model.decode(view, t, {}, method="greedy", threshold=0.0)
