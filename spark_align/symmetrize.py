@@ -161,22 +161,20 @@ def _pair_lengths(n_src, n_tgt) -> tuple[np.ndarray, np.ndarray]:
 # ---------------------------------------------------------------------------
 
 def _grow_diag(kept: set[Link], candidates: set[Link], src_aligned: list[bool], tgt_aligned: list[bool]) -> None:
-    """Grow ``kept`` in place with the published row-major passes (see module docstring).
+    """Grow ``kept`` in place, giving the same result as the published row-major passes.
 
-    A pass of the pseudocode visits every kept link; visiting one that has no
-    candidate neighbour changes nothing, so each pass visits only those that do,
-    in the same row-major order. Links added during a pass at a later grid
-    position are visited in that pass too, as the scan would reach them.
+    A pass of the pseudocode visits every kept link. Visiting one that has no
+    candidate neighbour changes nothing, and once a link has been visited it can
+    never add anything later: each candidate neighbour was then either added or
+    blocked, and blocking is permanent because words only become aligned. So
+    pass 1 visits the kept links next to a candidate, in row-major order; a link
+    added ahead of the scan position is visited in the same pass (the scan
+    reaches it), and one added behind it waits for the next pass, which visits
+    only such links. Growing stops when a pass leaves nothing for the next.
     """
-    while candidates:
-        # Alignment only grows, so a candidate whose two words are both aligned is blocked for good.
-        candidates = {c for c in candidates if not (src_aligned[c[0]] and tgt_aligned[c[1]])}
-        active = {(i - di, j - dj) for i, j in candidates for di, dj in _NEIGHBOURS} & kept
-        if not active:
-            return
-        queue = sorted(active)
-        heapq.heapify(queue)
-        added = False
+    queue = sorted({(i - di, j - dj) for i, j in candidates for di, dj in _NEIGHBOURS} & kept)
+    while queue:
+        behind = []
         while queue:
             i, j = point = heapq.heappop(queue)
             for di, dj in _NEIGHBOURS:
@@ -185,11 +183,11 @@ def _grow_diag(kept: set[Link], candidates: set[Link], src_aligned: list[bool], 
                     kept.add(new)
                     candidates.discard(new)
                     src_aligned[new[0]] = tgt_aligned[new[1]] = True
-                    added = True
                     if new > point:
                         heapq.heappush(queue, new)
-        if not added:
-            return
+                    else:
+                        behind.append(new)
+        queue = sorted(behind)
 
 
 def _final(kept: set[Link], links: set[Link], src_aligned: list[bool], tgt_aligned: list[bool], both: bool) -> None:
