@@ -42,6 +42,7 @@ from spark_align.kernels.ragged import GenCells, View, offsets_from_lengths
 
 MIN_PROB = 1e-12
 CONTEXT_CAP = 50
+MAX_BATCH = 1024
 
 
 # ---------------------------------------------------------------- jump parameters
@@ -111,12 +112,21 @@ def _token_layout(view: View, gc: GenCells) -> tuple[np.ndarray, np.ndarray]:
 
 
 def _groups(view: View) -> list[tuple[int, np.ndarray]]:
-    """(l, pairs with that cond length and m >= 1) for every l present."""
+    """(l, pairs) batches: pairs with cond length l and m >= 1, at most ``MAX_BATCH`` per batch.
+
+    Pairs are sorted by m within a length so that a batch pads little, and
+    batches are capped so that the (M, B, l) work arrays stay small.
+    """
     has_tokens = np.flatnonzero(view.gen_len > 0)
-    order = has_tokens[np.argsort(view.cond_len[has_tokens], kind="stable")]
+    order = has_tokens[np.lexsort((view.gen_len[has_tokens], view.cond_len[has_tokens]))]
     lens = view.cond_len[order]
     cuts = np.flatnonzero(np.diff(lens)) + 1
-    return [(int(view.cond_len[g[0]]), g) for g in np.split(order, cuts) if len(g)]
+    out = []
+    for g in np.split(order, cuts):
+        if len(g):
+            l = int(view.cond_len[g[0]])
+            out.extend((l, chunk) for chunk in np.array_split(g, -(-len(g) // MAX_BATCH)))
+    return out
 
 
 def _group_links(pairs: np.ndarray, l: int, m: np.ndarray, pair_tok0: np.ndarray,

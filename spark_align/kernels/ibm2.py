@@ -200,9 +200,14 @@ def diag_feature(cond_pos: np.ndarray, j: np.ndarray, l: np.ndarray, m: np.ndarr
     return np.where(real, -np.abs(cond_pos / np.maximum(l, 1) - j / np.maximum(m, 1)), 0.0)
 
 
-def diag_align_probs(view: View, gc: GenCells, p_null: float, lam: float) -> tuple[np.ndarray, np.ndarray]:
-    """a(i | j, l, m) of every link and the feature h: (float64, float64), (n_links,)."""
-    j, l, m = link_geometry(view, gc)
+def diag_align_probs(view: View, gc: GenCells, p_null: float, lam: float,
+                     geometry: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None
+                     ) -> tuple[np.ndarray, np.ndarray]:
+    """a(i | j, l, m) of every link and the feature h: (float64, float64), (n_links,).
+
+    ``geometry``: (j, l, m) of the links if the caller already has them.
+    """
+    j, l, m = geometry if geometry is not None else link_geometry(view, gc)
     h = diag_feature(gc.cond_pos, j, l, m)
     real = gc.cond_pos > 0
     # h <= 0, so exp never overflows; every token with l >= 1 has a link with h >= -1/l.
@@ -234,10 +239,10 @@ def diag_e_step(view: View, t: np.ndarray, p_null: float, lam: float, cap: int,
     token summed per context; ``loglik``.
     """
     gc, p = _gather(view, t, gc)
-    a, h = diag_align_probs(view, gc, p_null, lam)
+    j, l, m = link_geometry(view, gc)
+    a, h = diag_align_probs(view, gc, p_null, lam, (j, l, m))
     post, denom = link_posteriors(gc, p * a)
     counts = np.bincount(view.cells[gc.flat], weights=post, minlength=len(t))
-    j, l, m = link_geometry(view, gc)
     real = gc.cond_pos > 0
     ctx = diag_context_index(j[real], l[real], m[real], cap)
     mass = np.bincount(ctx, weights=post[real], minlength=diag_n_contexts(cap))

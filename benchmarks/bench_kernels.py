@@ -1,0 +1,83 @@
+"""Throughput of the E-step kernels on a generated corpus (no Spark).
+
+Corpus: ``--pairs`` sentence pairs, each side 10-40 tokens (uniform), words
+drawn from a Zipf(1.1) distribution over ``--vocab`` words per side, encoded
+into one block. Lexical probabilities are random. Figures printed:
+
+* IBM1 / IBM2 / diagonal IBM2 E-step: million links per second, a link being one
+  (generated token, cond position 0..l) pair;
+* HMM E-step (forward-backward + counts): million cells per second, a cell
+  being one (target position, previous source position, source position)
+  transition, i.e. m * l * l per pair.
+
+Run: ``python3 benchmarks/bench_kernels.py [--pairs 4000] [--repeat 3]``.
+"""
+from __future__ import annotations
+
+import argparse
+import time
+
+import numpy as np
+
+from spark_align.kernels import ragged
+from spark_align.models.hmm import HMM
+from spark_align.models.ibm1 import IBM1
+from spark_align.models.ibm2 import IBM2, IBM2Diag
+
+
+def zipf_corpus(rng: np.random.Generator, n_pairs: int, n_words: int, min_len: int = 10,
+                max_len: int = 40) -> ragged.Block:
+    weights = 1.0 / np.arange(1, n_words + 1) ** 1.1
+    weights /= weights.sum()
+    src_len = rng.integers(min_len, max_len + 1, n_pairs)
+    tgt_len = rng.integers(min_len, max_len + 1, n_pairs)
+    src_ids = rng.choice(n_words, size=int(src_len.sum()), p=weights).astype(np.int32) + 1
+    tgt_ids = rng.choice(n_words, size=int(tgt_len.sum()), p=weights).astype(np.int32) + 1
+    return ragged.build_block(ragged.offsets_from_lengths(src_len), src_ids,
+                              ragged.offsets_from_lengths(tgt_len), tgt_ids)
+
+
+def best_time(fn, repeat: int) -> float:
+    times = []
+    for _ in range(repeat):
+        start = time.perf_counter()
+        fn()
+        times.append(time.perf_counter() - start)
+    return min(times)
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    parser.add_argument("--pairs", type=int, default=4000)
+    parser.add_argument("--vocab", type=int, default=20_000)
+    parser.add_argument("--repeat", type=int, default=3)
+    parser.add_argument("--seed", type=int, default=0)
+    args = parser.parse_args()
+
+    rng = np.random.default_rng(args.seed)
+    start = time.perf_counter()
+    block = zipf_corpus(rng, args.pairs, args.vocab)
+    build = time.perf_counter() - start
+    view = block.view("forward")
+    t = rng.uniform(1e-4, 1.0, len(block.dict_keys))
+    l, m = view.cond_len, view.gen_len
+    n_links = int(((l + 1) * m).sum())
+    n_cells = int((m * l * l).sum())
+    print(f"corpus: {args.pairs} pairs, {int(m.sum())} target tokens, {len(block.dict_keys)} dictionary "
+          f"entries, {n_links} links, {n_cells} HMM cells; block built in {build:.2f} s")
+
+    for model in (IBM1(), IBM2(), IBM2Diag()):
+        dense = model.init_dense(None)
+        secs = best_time(lambda: model.e_step(view, t, dense), args.repeat)
+        print(f"{model.name:9s} e_step: {secs:7.3f} s  {n_links / secs / 1e6:8.2f} M links/s")
+    model = HMM()
+    dense = model.init_dense(None)
+    secs = best_time(lambda: model.e_step(view, t, dense), args.repeat)
+    print(f"{'hmm':9s} e_step: {secs:7.3f} s  {n_cells / secs / 1e6:8.2f} M cells/s "
+          f"({n_links / secs / 1e6:.2f} M links/s)")
+    secs = best_time(lambda: model.decode(view, t, dense, method="viterbi", threshold=0.0), args.repeat)
+    print(f"{'hmm':9s} viterbi decode (incl. posteriors): {secs:7.3f} s  {n_cells / secs / 1e6:8.2f} M cells/s")
+
+
+if __name__ == "__main__":
+    main()
