@@ -187,6 +187,7 @@ def test_long_pair_does_not_underflow_and_posteriors_sum_to_one():
     counts, stats, loglik = model.e_step(view, t, dense)
     assert np.isfinite(loglik) and loglik < -1000      # 200 words at t = 1/500 each
     assert np.isfinite(stats).all() and np.isfinite(counts).all()
+    assert len(stats) == model.dense_size()
     gc, post, _, _ = hmm.forward_backward(view, t, dense["jump"], 0.2, 7)
     assert np.allclose(np.bincount(gc.token, weights=post), 1.0, atol=1e-9)
     path = hmm.viterbi(view, t, dense["jump"], 0.2, 7)

@@ -75,6 +75,7 @@ def test_classic_matches_enumeration(seed, direction):
     assert np.allclose(ibm2.pair_loglik(view, t, table, cap), want_ll, atol=1e-9)
     gc, post = ibm2.posteriors(view, t, table, cap)
     assert np.allclose(post, want_post, atol=1e-9)
+    assert np.allclose(np.bincount(gc.token, weights=post), 1.0, atol=1e-12)
     best, _ = ibm2.viterbi_from_posteriors(gc, post)
     assert np.array_equal(best, want_best)
     # Expected table counts: every link's posterior lands on its own (i, j, l, m) entry.
@@ -97,6 +98,7 @@ def test_diag_matches_enumeration(seed, direction):
     assert np.allclose(ibm2.diag_pair_loglik(view, t, p_null, lam), want_ll, atol=1e-9)
     gc, post = ibm2.diag_posteriors(view, t, p_null, lam)
     assert np.allclose(post, want_post, atol=1e-9)
+    assert np.allclose(np.bincount(gc.token, weights=post), 1.0, atol=1e-12)
     assert np.array_equal(ibm2.viterbi_from_posteriors(gc, post)[0], want_best)
     # Non-NULL mass per context adds up to the non-NULL posterior mass.
     assert mass.sum() == pytest.approx(post[gc.cond_pos > 0].sum())
@@ -189,6 +191,7 @@ def test_posteriors_sum_to_one_and_long_pair_is_finite(model):
     t = np.full(len(block.dict_keys), 1.0 / 300)
     dense = model.init_dense(None)
     counts, stats, loglik = model.e_step(view, t, dense)
+    assert len(stats) == model.dense_size() and np.isfinite(stats).all()
     assert np.isfinite(loglik) and loglik < 0
     assert np.isfinite(model.pair_loglik(view, t, dense)).all()
     assert counts.sum() == pytest.approx(int(view.gen_len.sum()))
