@@ -12,6 +12,7 @@ from spark_align.config import (DECODINGS, DIRECTIONS, INITS, SYMMETRIZATIONS, C
 from spark_align.errors import ConfigError, SparkAlignError
 
 EXIT_USAGE = 2
+DEMO_STAGES = "ibm1:5"
 
 
 def _conf_pairs(items: Sequence[str]) -> dict[str, str]:
@@ -99,10 +100,12 @@ def build_parser() -> argparse.ArgumentParser:
     d = sub.add_parser("demo", help="generate a small demo corpus, train on it in local mode, show results",
                        description="Generate a deterministic demo corpus of invented sentence pairs, train "
                                    "on it in local mode and print where the outputs are and a few alignments.")
-    d.add_argument("--run", default="demo-run", metavar="RUN_DIR",
-                   help="run directory (default ./demo-run; replaced if it holds an earlier demo)")
+    d.add_argument("--dir", default="spark-align-demo", metavar="DIR",
+                   help="folder for the demo corpus (DIR/corpus) and run (DIR/run); default ./spark-align-demo, "
+                        "replaced if it holds an earlier demo")
     d.add_argument("--pairs", type=int, default=3000, help="number of generated sentence pairs (default 3000)")
-    d.add_argument("--stages", default="ibm1:5", help="stages as in train (default ibm1:5)")
+    d.add_argument("--stages", default=DEMO_STAGES, help=f"stages as in train (default {DEMO_STAGES})")
+    d.add_argument("--directions", choices=DIRECTIONS, default="both", help="as in train (default both)")
     add_spark_options(d)
     return parser
 
@@ -144,7 +147,9 @@ def cmd_train(args: argparse.Namespace) -> int:
 def cmd_demo(args: argparse.Namespace) -> int:
     from spark_align.demo import run_demo
 
-    run_demo(session(args), run_dir=args.run, n_pairs=args.pairs, stages=args.stages)
+    parse_stages(args.stages)
+    run_demo(session(args), demo_dir=args.dir, n_pairs=args.pairs, stages=args.stages, directions=args.directions,
+             log=lambda line: print(line, flush=True))
     return 0
 
 

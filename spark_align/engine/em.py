@@ -70,7 +70,7 @@ def init_table(spark, blocks_df, directions, init: str, seed: int, src_vocab: in
     from pyspark.sql import functions as F
 
     keys = blocks_df.select(F.explode("dict_keys").alias("key")).distinct()
-    keys = keys.select((F.col("key") >> 32).cast("int").alias("src"),
+    keys = keys.select(F.shiftright(F.col("key"), 32).cast("int").alias("src"),
                        (F.col("key").bitwiseAND(F.lit(0xFFFFFFFF))).cast("int").alias("tgt"))
     frames = []
     for d in directions:

@@ -79,12 +79,14 @@ def make_estep(model, directions: tuple[str, ...], tables_bc, dense: dict[str, d
                     t_local = tables[direction].local(block.dict_keys)
                     counts, stats, loglik = model.e_step(block.view(direction), t_local, dense[direction])
                     emitted = (tgt != 0) if direction == "forward" else (src != 0)
-                    n_stats = len(stats)
-                    values = np.concatenate([counts[emitted], stats, [loglik]])
+                    # Dense statistics are mostly zero per block (big alignment tables); zeros sum to nothing.
+                    stat_index = np.flatnonzero(stats).astype(np.int32)
+                    values = np.concatenate([counts[emitted], stats[stat_index], [loglik]])
                     parts.append((
                         np.full(len(values), d, np.int8),
-                        np.concatenate([src[emitted], np.full(n_stats, DENSE, np.int32), [SCALAR]]).astype(np.int32),
-                        np.concatenate([tgt[emitted], np.arange(n_stats, dtype=np.int32), [0]]).astype(np.int32),
+                        np.concatenate([src[emitted], np.full(len(stat_index), DENSE, np.int32), [SCALAR]]
+                                       ).astype(np.int32),
+                        np.concatenate([tgt[emitted], stat_index, [0]]).astype(np.int32),
                         values))
             if not parts:
                 continue

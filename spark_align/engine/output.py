@@ -46,12 +46,53 @@ def links_column(n_pairs: int, pair, src_i, tgt_j, post) -> pa.ListArray:
     return pa.ListArray.from_arrays(pa.array(offsets), structs)
 
 
-def combine(n_pairs: int, block: ragged.Block, fwd, rev, method: str):
-    """Symmetrize the two directions' links for every pair of a block (flat arrays in, out)."""
+def _csr(n_pairs: int, links) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    pair, src_i, tgt_j = links[0], links[1], links[2]
+    offsets = np.searchsorted(pair, np.arange(n_pairs + 1)).astype(np.int64)
+    return offsets, src_i.astype(np.int32), tgt_j.astype(np.int32)
+
+
+def _link_key(pair, src_i, tgt_j) -> np.ndarray:
+    return (pair.astype(np.int64) << 40) | (src_i.astype(np.int64) << 20) | tgt_j.astype(np.int64)
+
+
+def mean_posterior(links, dense_fwd, dense_rev) -> np.ndarray:
+    """Average of the two directions' posteriors of each link (0 where a direction gives none)."""
+    key = _link_key(*links[:3])
+    total = np.zeros(len(key))
+    for dense in (dense_fwd, dense_rev):
+        dkey = _link_key(*dense[:3])
+        order = np.argsort(dkey)
+        from spark_align.kernels.ragged import lookup
+
+        total += lookup(dkey[order], dense[3][order], key, 0.0)
+    return total / 2.0
+
+
+def combine(block: ragged.Block, fwd, rev, fwd_all, rev_all, method: str, threshold: float):
+    """Combine the two directions' links of every pair of a block (flat sorted arrays in and out).
+
+    ``fwd``/``rev`` are each direction's chosen links, ``fwd_all``/``rev_all`` every
+    link with a non-negligible posterior. The posterior stored with a combined link
+    is the mean of its two directional posteriors.
+    """
     from spark_align import symmetrize
 
+    n = block.n_pairs
     src_len, tgt_len = ragged.lengths(block.src_offsets), ragged.lengths(block.tgt_offsets)
-    return symmetrize.combine_block(n_pairs, src_len, tgt_len, fwd, rev, method)
+    if method == "posterior":
+        got = symmetrize.combine_posteriors_batch(
+            (*_csr(n, fwd_all), fwd_all[3]), (*_csr(n, rev_all), rev_all[3]),
+            n_src=src_len, n_tgt=tgt_len, threshold=threshold)
+        pair = ragged.row_of(got.offsets)
+        return pair, got.src_index.astype(np.int64), got.tgt_index.astype(np.int64), got.posterior
+    got = symmetrize.symmetrize_batch(_csr(n, fwd), _csr(n, rev), n_src=src_len, n_tgt=tgt_len, method=method)
+    pair = ragged.row_of(got.offsets)
+    links = (pair, got.src_index.astype(np.int64), got.tgt_index.astype(np.int64))
+    return (*links, mean_posterior(links, fwd_all, rev_all))
+
+
+ALL_LINKS_THRESHOLD = 1e-4  # posteriors below this count as 0 when directions are averaged
 
 
 def make_decoder(model, directions: tuple[str, ...], tables_bc, dense: dict, *, method: str,
@@ -61,16 +102,20 @@ def make_decoder(model, directions: tuple[str, ...], tables_bc, dense: dict, *, 
         for batch in batches:
             for _block_id, rows, block in blocks_from_batch(batch):
                 n = block.n_pairs
-                links, scores = {}, {}
+                links, every, scores = {}, {}, {}
                 for direction in directions:
                     view = block.view(direction)
                     t_local = tables[direction].local(block.dict_keys)
                     token, cond_pos, post = model.decode(view, t_local, dense[direction],
                                                          method=method, threshold=threshold)
                     links[direction] = directional_links(block, direction, token, cond_pos, post)
+                    if len(directions) == 2:
+                        every[direction] = directional_links(block, direction, *model.decode(
+                            view, t_local, dense[direction], method="posterior", threshold=ALL_LINKS_THRESHOLD))
                     scores[direction] = model.pair_loglik(view, t_local, dense[direction]) / np.maximum(view.gen_len, 1)
                 if len(directions) == 2:
-                    sym = combine(n, block, links["forward"], links["reverse"], symmetrization)
+                    sym = combine(block, links["forward"], links["reverse"], every["forward"], every["reverse"],
+                                  symmetrization, threshold)
                 else:
                     sym = links[directions[0]]
                 empty = (np.zeros(0, np.int64),) * 3 + (np.zeros(0),)

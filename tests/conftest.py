@@ -1,0 +1,30 @@
+"""Shared fixtures: one Spark session per test session (local[2], UI off, WARN logs)."""
+from __future__ import annotations
+
+import os
+import sys
+
+import pytest
+
+os.environ.setdefault("PYSPARK_PYTHON", sys.executable)
+
+
+@pytest.fixture(scope="session")
+def spark():
+    from spark_align.engine.session import get_session
+
+    session = get_session("local[2]", {"spark.sql.shuffle.partitions": "4",
+                                      "spark.default.parallelism": "2"}, app_name="spark_align-tests")
+    yield session
+    session.stop()
+
+
+@pytest.fixture
+def run_dir(tmp_path):
+    return str(tmp_path / "run")
+
+
+def pytest_collection_modifyitems(items):
+    for item in items:
+        if "spark" in getattr(item, "fixturenames", ()):
+            item.add_marker(pytest.mark.spark)
