@@ -103,7 +103,7 @@ class RunConfig:
 
     corpus: CorpusConfig
     stages: tuple[StageConfig, ...] = (StageConfig("ibm1", 5),)
-    directions: str = "forward"
+    directions: str = "both"
     init: str = "uniform"
     seed: int = 0
     block_size: int = 512

@@ -31,7 +31,8 @@ def test_model1_matches_nltk_ibm1(spark, tmp_path):
     tgt = TOY_TARGET + ["a book is small", "the book is big"]
     s, t = write_text(tmp_path, src, tgt)
     run_dir = str(tmp_path / "run")
-    train(spark, config(CorpusConfig(source_text=s, target_text=t), "ibm1:4"), run_dir, log=lambda _: None)
+    train(spark, config(CorpusConfig(source_text=s, target_text=t), "ibm1:4", directions="forward"), run_dir,
+          log=lambda _: None)
 
     nltk_model = IBMModel1([AlignedSent(b.split(), a.split()) for a, b in zip(src, tgt)], 4)
     table = read_table(run_dir, "00-ibm1", 4).to_pydict()
@@ -53,8 +54,8 @@ def test_output_keeps_every_row_and_links_are_in_range(spark, tmp_path):
     s, t = write_text(tmp_path, src, tgt)
     run_dir = str(tmp_path / "run")
     lines = []
-    train(spark, config(CorpusConfig(source_text=s, target_text=t, max_ratio=5), "ibm1:2"), run_dir,
-          log=lines.append)
+    train(spark, config(CorpusConfig(source_text=s, target_text=t, max_ratio=5), "ibm1:2", directions="forward"),
+          run_dir, log=lines.append)
     out = read_output(run_dir)
     assert out.num_rows == len(src)
     assert out.column("line").to_pylist() == list(range(1, len(src) + 1))
