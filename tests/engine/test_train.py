@@ -141,6 +141,8 @@ def test_random_init_is_seeded(spark, tmp_path):
     assert not runs[0].equals(runs[2])
     probs = runs[0].to_pydict()
     totals = {}
-    for s_id, p in zip(probs["src"], probs["prob"]):
-        totals[s_id] = totals.get(s_id, 0.0) + p
+    for d, s_id, t_id, p in zip(probs["dir"], probs["src"], probs["tgt"], probs["prob"]):
+        key = (d, s_id if d == 0 else t_id)  # normalised per conditioning word of each direction
+        totals[key] = totals.get(key, 0.0) + p
+    assert {d for d, _ in totals} == {0, 1}
     assert all(v == pytest.approx(1.0) for v in totals.values())
