@@ -135,7 +135,8 @@ class Trainer:
             if not np.isfinite(per_word):
                 raise NumericalError(f"{stage.model} iteration {state.iteration + 1} ({d}): "
                                      f"log-likelihood is {loglik}")
-            metrics[d] = {"loglik": loglik, "loglik_per_word": per_word, "perplexity": float(np.exp(-per_word))}
+            metrics[d] = {"loglik": loglik, "loglik_per_word": per_word, "perplexity": float(np.exp(-per_word)),
+                          "kernel_seconds": sums[d]["scalar"].get(1, 0.0), "links": sums[d]["scalar"].get(2, 0.0)}
         return self.store.spark_path(rel, "lex"), new_dense, metrics
 
     # -- the loop ----------------------------------------------------------------------

@@ -6,7 +6,8 @@ direction and emits rows ``(dir, src, tgt, hi, lo)``:
 
 * ``src >= 0``: expected count of the pair (src, tgt) in direction ``dir``;
 * ``src == -1``: entry ``tgt`` of the model's dense statistics vector;
-* ``src == -2``: scalars (``tgt == 0``: log-likelihood).
+* ``src == -2``: scalars (``tgt == 0``: log-likelihood; ``tgt == 1``: seconds spent in the
+  model kernel, for the share-outside-the-kernel figure; ``tgt == 2``: links processed).
 
 Counts leave the task as 64-bit fixed point in two parts (``v = hi / 2^20 +
 lo / 2^50``, error below 1e-15 per value) and are summed as integers by
@@ -18,6 +19,7 @@ on the number of partitions. Limits: |per-block value| < 2^43 and fewer than
 from __future__ import annotations
 
 import os
+import time
 
 import numpy as np
 import pyarrow as pa
@@ -77,16 +79,20 @@ def make_estep(model, directions: tuple[str, ...], tables_bc, dense: dict[str, d
                 for direction in directions:
                     d = DIRS.index(direction)
                     t_local = tables[direction].local(block.dict_keys)
-                    counts, stats, loglik = model.e_step(block.view(direction), t_local, dense[direction])
+                    view = block.view(direction)
+                    started = time.perf_counter()
+                    counts, stats, loglik = model.e_step(view, t_local, dense[direction])
+                    kernel_seconds = time.perf_counter() - started
+                    n_links = float(((view.cond_len + 1) * view.gen_len).sum())
                     emitted = (tgt != 0) if direction == "forward" else (src != 0)
                     # Dense statistics are mostly zero per block (big alignment tables); zeros sum to nothing.
                     stat_index = np.flatnonzero(stats).astype(np.int32)
-                    values = np.concatenate([counts[emitted], stats[stat_index], [loglik]])
+                    values = np.concatenate([counts[emitted], stats[stat_index], [loglik, kernel_seconds, n_links]])
                     parts.append((
                         np.full(len(values), d, np.int8),
-                        np.concatenate([src[emitted], np.full(len(stat_index), DENSE, np.int32), [SCALAR]]
-                                       ).astype(np.int32),
-                        np.concatenate([tgt[emitted], stat_index, [0]]).astype(np.int32),
+                        np.concatenate([src[emitted], np.full(len(stat_index), DENSE, np.int32),
+                                        np.full(3, SCALAR, np.int32)]).astype(np.int32),
+                        np.concatenate([tgt[emitted], stat_index, np.arange(3, dtype=np.int32)]).astype(np.int32),
                         values))
             if not parts:
                 continue
