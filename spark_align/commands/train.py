@@ -48,6 +48,14 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
                    help="continue the run in RUN_DIR from its last intact checkpoint")
     g.add_argument("--resume-from", metavar="MODEL:ITERATION",
                    help="continue from a given committed checkpoint (later ones are removed)")
+    g.add_argument("--gold", metavar="PATH",
+                   help="gold alignments of some corpus pairs (text: one line per corpus line with 'i-j' sure and "
+                        "'i?j' possible links; or Parquet with a key column and 'sure'/'possible' link lists): "
+                        "precision, recall, F1 and AER on them after every iteration, in the progress line and "
+                        "the manifest")
+    g.add_argument("--gold-id-column", metavar="NAME",
+                   help="key column of a Parquet --gold file (default: --id-column for a Parquet corpus, "
+                        "'line' for a text corpus)")
     common.add_spark_options(p)
 
 
@@ -65,5 +73,5 @@ def run(args: argparse.Namespace) -> int:
     if args.resume and args.resume_from:
         raise ConfigError("use either --resume or --resume-from, not both")
     train(common.session(args), cfg, args.run, resume=args.resume, resume_from=args.resume_from,
-          log=common.printer)
+          log=common.printer, gold=args.gold, gold_id_column=args.gold_id_column)
     return 0

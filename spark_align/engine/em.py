@@ -96,9 +96,10 @@ class Trainer:
     """Runs the stages of a :class:`RunConfig` over an ingested run directory."""
 
     def __init__(self, spark, cfg: RunConfig, store: RunStore, encoded: dict,
-                 *, fingerprint: str, log: Callable[[str], None] = print) -> None:
+                 *, fingerprint: str, log: Callable[[str], None] = print, gold=None) -> None:
         self.spark, self.cfg, self.store, self.encoded = spark, cfg, store, encoded
         self.fingerprint, self.log = fingerprint, log
+        self.gold = gold  # an engine.gold.GoldMonitor: scores gold pairs after each iteration (train --gold)
         self.directions = cfg.direction_list
         self.n_words = {"forward": encoded["n_tgt_tokens"], "reverse": encoded["n_src_tokens"]}
 
@@ -160,6 +161,8 @@ class Trainer:
             started = time.time()
             table_path, new_dense, metrics = self.iterate(model, state)
             seconds = time.time() - started
+            if self.gold is not None:
+                metrics["gold"] = self.gold.measure(model, table_path, new_dense)
             durations.append(seconds)
             total_left -= 1
             iteration = state.iteration + 1
@@ -193,7 +196,13 @@ def progress_line(model: str, stage_index: int, iteration: int, n_iter: int, met
                   seconds: float, left: int, mean_seconds: float) -> str:
     parts = [f"[stage {stage_index + 1} {model} {iteration}/{n_iter}]"]
     for d, m in metrics.items():
+        if d == "gold":
+            continue
         parts.append(f"{d}: loglik/word {m['loglik_per_word']:.4f} ppl {m['perplexity']:.2f}")
+    if "gold" in metrics:
+        from spark_align.engine.gold import progress_part
+
+        parts.append(progress_part(metrics["gold"]))
     parts.append(f"{seconds:.1f}s")
     parts.append(f"{left} iteration(s) left, ~{left * mean_seconds:.0f}s" if left else "training done")
     return " | ".join(parts)

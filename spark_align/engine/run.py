@@ -7,6 +7,7 @@ from collections.abc import Callable
 
 from spark_align.config import RunConfig
 from spark_align.engine import em, ingest, output, tables
+from spark_align.engine import gold as gold_mod
 from spark_align.errors import CheckpointError, CheckpointMismatchError, RunDirError
 from spark_align.fingerprint import corpus_fingerprint
 from spark_align.store import FORMAT_VERSION, Checkpoint, RunStore
@@ -91,8 +92,12 @@ def _state_of(store: RunStore, ckpt: Checkpoint) -> em.TrainState:
 
 
 def train(spark, cfg: RunConfig, run_dir: str, *, resume: bool = False, resume_from: str | None = None,
-          log: Callable[[str], None] = print) -> dict:
-    """Train ``cfg`` in ``run_dir``; returns the output manifest (with the run summary)."""
+          log: Callable[[str], None] = print, gold: str | None = None, gold_id_column: str | None = None) -> dict:
+    """Train ``cfg`` in ``run_dir``; returns the output manifest (with the run summary).
+
+    ``gold`` (a gold alignment file, see ``engine.gold``) adds precision, recall, F1 and AER on the
+    gold pairs to every iteration's progress line and manifest (``metrics.gold``).
+    """
     started = time.time()
     store = RunStore(run_dir)
     continuing = resume or resume_from is not None
@@ -104,6 +109,7 @@ def train(spark, cfg: RunConfig, run_dir: str, *, resume: bool = False, resume_f
         if store.checkpoints() or store.exists("corpus"):
             raise RunDirError(f"{store.url} has no run.json: it is not a spark_align run directory")
     ingest.validate(spark, cfg)
+    gold_set = gold_mod.load_gold(gold, cfg.corpus, id_column=gold_id_column) if gold else None
     fingerprint = corpus_fingerprint(spark, cfg.corpus)
     if existing is not None:
         check_compatible(existing, cfg, fingerprint, store.url)
@@ -121,13 +127,18 @@ def train(spark, cfg: RunConfig, run_dir: str, *, resume: bool = False, resume_f
         encoded = dataclasses.asdict(summary)
         store.write_json("encoded.json", {**encoded, "corpus_fingerprint": fingerprint})
     log(summary_line(encoded))
-    trainer = em.Trainer(spark, cfg, store, encoded, fingerprint=fingerprint, log=log)
+    monitor = gold_mod.GoldMonitor.build(spark, cfg, store, gold_set, log) if gold_set else None
+    trainer = em.Trainer(spark, cfg, store, encoded, fingerprint=fingerprint, log=log, gold=monitor)
     state = starting_state(store, cfg, resume_from, log) if continuing else None
     if state is None:
         state = em.TrainState(0, 0, None, {})
         if cfg.init == "random":
             state = _random_init(spark, cfg, store, trainer, encoded)
-    state = trainer.train(state)
+    try:
+        state = trainer.train(state)
+    finally:
+        if monitor is not None:
+            monitor.close()
     last = cfg.stages[state.stage_index]
     model = last.build()
     src_v, tgt_v = encoded["src_vocab_size"], encoded["tgt_vocab_size"]
