@@ -124,14 +124,22 @@ def _check_nulls(spark, c) -> None:
 
     df = spark.read.parquet(c.path).select(
         "_metadata.file_path", "_metadata.row_index", c.source_column, c.target_column)
-    bad = df.filter(F.col(c.source_column).isNull() | F.col(c.target_column).isNull())
-    first = bad.limit(1).collect()
+    src, tgt = F.col(c.source_column), F.col(c.target_column)
+    # Parquet strings are not checked by Spark's reader: bad bytes would fail the tokenizer mid-job.
+    bad = df.filter(src.isNull() | tgt.isNull() | ~F.is_valid_utf8(src) | ~F.is_valid_utf8(tgt))
+    first = bad.select("file_path", "row_index", src.isNull().alias("src_null"), tgt.isNull().alias("tgt_null"),
+                       F.is_valid_utf8(src).alias("src_ok")).limit(1).collect()
     if first:
         row = first[0]
-        column = c.source_column if row[c.source_column] is None else c.target_column
         n_bad = bad.count()
-        raise InputError(f"{row['file_path']} row {row['row_index']}: null in column {column!r} "
-                         f"({n_bad} row(s) with nulls); fill or drop them first")
+        where = f"{row['file_path']} row {row['row_index']}"
+        if row["src_null"] or row["tgt_null"]:
+            column = c.source_column if row["src_null"] else c.target_column
+            raise InputError(f"{where}: null in column {column!r} ({n_bad} row(s) with nulls or invalid "
+                             f"UTF-8); fill or drop them first")
+        column = c.target_column if row["src_ok"] else c.source_column
+        raise InputError(f"{where}: invalid UTF-8 in column {column!r} ({n_bad} row(s) with nulls or invalid "
+                         f"UTF-8); fix the encoding first")
 
 
 # -- tokens and vocabularies -----------------------------------------------------------
@@ -180,20 +188,29 @@ def load_vocab_index(spark, path: str):
     return pd.Index(table.column("word").to_pylist()), len(ids)
 
 
-def encode_blocks(spark, tokens, src_index, tgt_index, block_size: int):
-    """Kept pairs -> one row per block (token ids, pair dictionary, link grid)."""
+def encode_blocks(spark, tokens, src_index, tgt_index, block_size: int,
+                  *, unknown_ids: tuple[int, int] | None = None):
+    """Kept pairs -> one row per block (token ids, pair dictionary, link grid).
+
+    ``unknown_ids`` (source id, target id) encodes words missing from the
+    vocabularies (aligning new data); without it every word must be known
+    (training), since a missing word would otherwise become NULL.
+    """
     from pyspark.sql import functions as F
 
     sc = spark.sparkContext
     src_bc, tgt_bc = sc.broadcast(src_index), sc.broadcast(tgt_index)
+    unknown = unknown_ids or (0, 0)
 
     def to_ids(batches):
         for batch in batches:
             rows = batch.column(0).to_numpy()
             out = [pa.array(block_id_of(rows, block_size)), batch.column(0)]
-            for col, bc in ((2, src_bc), (3, tgt_bc)):
+            for col, bc, unk in ((2, src_bc, unknown[0]), (3, tgt_bc, unknown[1])):
                 lists = batch.column(col)
                 ids = bc.value.get_indexer(lists.flatten().to_numpy(zero_copy_only=False)) + 1
+                if unk:
+                    ids[ids == 0] = unk
                 out.append(pa.ListArray.from_arrays(
                     pa.array(lists.offsets.to_numpy() - lists.offsets[0].as_py()),
                     pa.array(ids.astype(np.int32))))
