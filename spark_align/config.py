@@ -16,6 +16,7 @@ from spark_align.errors import ConfigError
 DIRECTIONS = ("forward", "reverse", "both")
 INITS = ("uniform", "random")
 DECODINGS = ("viterbi", "posterior")
+SHIPPINGS = ("auto", "broadcast", "join")
 SYMMETRIZATIONS = ("intersection", "union", "grow-diag", "grow-diag-final", "grow-diag-final-and",
                    "posterior")
 
@@ -84,8 +85,40 @@ class StageConfig:
         return get_model(self.model, **dict(self.options))
 
 
-def parse_stages(text: str) -> tuple[StageConfig, ...]:
-    """Parse ``ibm1:5,hmm:5`` into stage configs; one-line errors name the bad part."""
+def parse_option_value(text: str) -> Any:
+    """``true``/``false``, integers and floats as such; anything else stays a string."""
+    low = text.strip().lower()
+    if low in ("true", "false"):
+        return low == "true"
+    for kind in (int, float):
+        try:
+            return kind(text)
+        except ValueError:
+            pass
+    return text.strip()
+
+
+def parse_model_options(items: list[str]) -> dict[str, dict[str, Any]]:
+    """``["hmm.p_null=0.1", ...]`` -> ``{"hmm": {"p_null": 0.1}}``."""
+    out: dict[str, dict[str, Any]] = {}
+    for item in items:
+        key, sep, value = item.partition("=")
+        model, dot, option = key.strip().partition(".")
+        if not sep or not dot or not model or not option:
+            raise ConfigError(f"--model-option takes MODEL.OPTION=VALUE (for example hmm.p_null=0.1), got {item!r}")
+        out.setdefault(model, {})[option] = parse_option_value(value)
+    return out
+
+
+def parse_stages(text: str, options: dict[str, dict[str, Any]] | None = None) -> tuple[StageConfig, ...]:
+    """Parse ``ibm1:5,hmm:5`` into stage configs; one-line errors name the bad part.
+
+    ``options`` maps a model name to options applied to every stage of that model.
+    """
+    options = options or {}
+    unused = set(options) - {p.strip().partition(":")[0].strip() for p in text.split(",")}
+    if unused:
+        raise ConfigError(f"--model-option names model(s) not in --stages: {', '.join(sorted(unused))}")
     stages = []
     for part in (p.strip() for p in text.split(",")):
         if not part:
@@ -93,7 +126,8 @@ def parse_stages(text: str) -> tuple[StageConfig, ...]:
         name, sep, n = part.partition(":")
         if not sep or not n.strip().isdigit():
             raise ConfigError(f"stages: {part!r} is not NAME:ITERATIONS (for example ibm1:5)")
-        stages.append(StageConfig(name.strip(), int(n)))
+        name = name.strip()
+        stages.append(StageConfig(name, int(n), tuple(sorted(options.get(name, {}).items()))))
     return tuple(stages)
 
 
@@ -110,6 +144,11 @@ class RunConfig:
     decoding: str = "viterbi"
     posterior_threshold: float = 0.5
     symmetrization: str = "grow-diag-final-and"
+    # How the E-step gets the table (engine/shipping.py); results are identical either way.
+    shipping: str = "auto"
+    table_budget_mb: float = 256.0
+    # Drop translation probabilities below this after each M-step (None: keep all).
+    prune_below: float | None = None
     extra: dict = field(default_factory=dict)
 
     def __post_init__(self) -> None:
@@ -123,6 +162,12 @@ class RunConfig:
             raise ConfigError(f"block_size must be at least 1, got {self.block_size}")
         if not 0.0 < self.posterior_threshold <= 1.0:
             raise ConfigError(f"posterior_threshold must be in (0, 1], got {self.posterior_threshold}")
+        if self.shipping not in SHIPPINGS:
+            raise ConfigError(f"shipping must be one of {', '.join(SHIPPINGS)}, got {self.shipping!r}")
+        if not self.table_budget_mb > 0:
+            raise ConfigError(f"table_budget_mb must be positive, got {self.table_budget_mb}")
+        if self.prune_below is not None and not 0.0 <= self.prune_below < 1.0:
+            raise ConfigError(f"prune_below must be in [0, 1), got {self.prune_below}")
 
     @property
     def direction_list(self) -> tuple[str, ...]:
@@ -154,6 +199,8 @@ class RunConfig:
         d["stages"] = [{"model": s["model"], "options": s["options"]} for s in d["stages"]]
         for output_only in ("decoding", "posterior_threshold", "symmetrization"):
             d.pop(output_only)
+        for same_results in ("shipping", "table_budget_mb"):  # how parameters travel, not what they are
+            d.pop(same_results, None)
         return d
 
     def with_stages(self, stages: tuple[StageConfig, ...]) -> "RunConfig":
