@@ -62,4 +62,20 @@ def run_demo(spark, *, demo_dir: str, n_pairs: int = 3000, stages: str = "ibm1:5
     log(f"against the known alignments: precision {precision:.3f}, recall {recall:.3f}")
     log(f"outputs: aligned corpus {os.path.join(run_dir, 'output')} (Parquet, column 'alignment'); "
         f"checkpoints {os.path.join(run_dir, 'checkpoints')}")
-    return {**manifest, "precision": precision, "recall": recall, "run_dir": run_dir}
+    report = write_demo_report(run_dir, log)
+    return {**manifest, "precision": precision, "recall": recall, "run_dir": run_dir, "report": report}
+
+
+def write_demo_report(run_dir: str, log=print) -> str | None:
+    """Write RUN_DIR/report.html and say where; without matplotlib, say how to get it instead."""
+    try:
+        import matplotlib  # noqa: F401
+    except ImportError:
+        log("report: matplotlib is not installed; pip install 'spark_align[report]' and then run "
+            f"spark-align report --run {run_dir}")
+        return None
+    from spark_align.report import write_report
+
+    path = write_report(run_dir)
+    log(f"report: {path} (open it in a browser)")
+    return path
