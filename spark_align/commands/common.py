@@ -20,11 +20,16 @@ def conf_pairs(items: Sequence[str]) -> dict[str, str]:
 
 def add_spark_options(p: argparse.ArgumentParser) -> None:
     g = p.add_argument_group("Spark")
-    g.add_argument("--master", default="local[*]",
-                   help="Spark master URL: local[*] (all cores of this machine, the default), local[N], "
-                        "local-cluster[N,cores,MB], spark://host:7077, yarn, k8s://...")
+    g.add_argument("--master", default=None,
+                   help="Spark master URL: local[*] (all cores of this machine), local[N], "
+                        "local-cluster[N,cores,MB], spark://host:7077, yarn, k8s://... (default: spark-submit's "
+                        "--master, else the profile's, else local[*])")
+    g.add_argument("--profile", metavar="NAME|FILE",
+                   help="Spark settings to start from: a profile in conf/ (local, standalone, yarn, kubernetes) "
+                        "or a TOML file; --conf and spark-submit's own settings override it")
     g.add_argument("--conf", action="append", default=[], metavar="KEY=VALUE",
-                   help="extra Spark setting, repeatable (for example --conf spark.executor.memory=8g)")
+                   help="extra Spark setting, repeatable (for example --conf spark.executor.memory=8g); wins "
+                        "over the profile")
 
 
 def add_corpus_options(p: argparse.ArgumentParser, *, required: bool = True) -> None:
@@ -64,9 +69,55 @@ def corpus_config(args: argparse.Namespace, **overrides) -> CorpusConfig:
 
 def session(args: argparse.Namespace):
     from spark_align.engine.session import get_session
+    from spark_align.profiles import load_profile
 
-    return get_session(args.master, conf_pairs(args.conf))
+    name = getattr(args, "profile", None)
+    return get_session(args.master, conf_pairs(args.conf), profile=load_profile(name) if name else None)
 
 
 def printer(line: str) -> None:
     print(line, flush=True)
+
+
+class ProgressLog:
+    """Progress lines to stdout and, with ``--log-json FILE``, JSON lines for dashboards.
+
+    Called with a text line, it prints it; its ``event(record)`` (called by the
+    EM loop after each iteration's line, see ``engine.em.iteration_event``)
+    appends one JSON object per line to the file, flushed at once so a
+    dashboard can follow it. The file is opened for appending: a resumed run
+    continues it.
+    """
+
+    def __init__(self, json_path: str | None = None) -> None:
+        self.json_path = json_path
+        self._fh = None
+        if json_path:
+            try:
+                self._fh = open(json_path, "a", encoding="utf-8", buffering=1)  # noqa: SIM115 - closed by close()
+            except OSError as exc:
+                raise ConfigError(f"--log-json {json_path}: cannot write it ({exc.strerror or exc})") from None
+
+    def __call__(self, line: str) -> None:
+        printer(line)
+
+    def event(self, record: dict) -> None:
+        if self._fh is not None:
+            import json
+            import time
+
+            record = {"time": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()), **record}
+            self._fh.write(json.dumps(record, sort_keys=True, default=_json_scalar) + "\n")
+            self._fh.flush()
+
+    def close(self) -> None:
+        if self._fh is not None:
+            self._fh.close()
+            self._fh = None
+
+
+def _json_scalar(obj):
+    tolist = getattr(obj, "tolist", None)  # numpy scalars and arrays
+    if tolist is not None:
+        return tolist()
+    raise TypeError(f"cannot write {type(obj).__name__} to JSON")

@@ -169,6 +169,12 @@ class Trainer:
             self._commit(state.stage_index, stage.model, iteration, stage.n_iter, metrics, new_dense, seconds)
             self.log(progress_line(stage.model, state.stage_index, iteration, stage.n_iter, metrics,
                                    seconds, total_left, float(np.mean(durations))))
+            event = getattr(self.log, "event", None)
+            if event is not None:  # structured progress (train --log-json): the figures of the line above
+                event(iteration_event(stage.model, state.stage_index, iteration, stage.n_iter, metrics, seconds,
+                                      total_left, float(np.mean(durations)),
+                                      self.store.spark_path(RunStore.checkpoint_dir(state.stage_index, stage.model,
+                                                                                    iteration))))
             state = TrainState(state.stage_index, iteration, table_path, new_dense)
         return state
 
@@ -190,6 +196,19 @@ class Trainer:
             "corpus_fingerprint": self.fingerprint,
             "committed_at": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
         })
+
+
+def iteration_event(model: str, stage_index: int, iteration: int, n_iter: int, metrics: dict, seconds: float,
+                    left: int, mean_seconds: float, checkpoint: str) -> dict:
+    """One committed iteration as a JSON-ready record (what ``progress_line`` prints, unrounded).
+
+    A ``log`` callable given to :class:`Trainer` that has an ``event`` attribute
+    receives this record after each iteration's line.
+    """
+    return {"event": "iteration", "time": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+            "stage": stage_index + 1, "model": model, "iteration": iteration, "stage_iterations": n_iter,
+            "seconds": seconds, "iterations_left": left, "eta_seconds": left * mean_seconds,
+            "checkpoint": checkpoint, "metrics": metrics}
 
 
 def progress_line(model: str, stage_index: int, iteration: int, n_iter: int, metrics: dict,

@@ -92,8 +92,12 @@ def _state_of(store: RunStore, ckpt: Checkpoint) -> em.TrainState:
 
 
 def train(spark, cfg: RunConfig, run_dir: str, *, resume: bool = False, resume_from: str | None = None,
-          log: Callable[[str], None] = print, gold: str | None = None, gold_id_column: str | None = None) -> dict:
+          log: Callable[[str], None] = print, gold: str | None = None, gold_id_column: str | None = None,
+          run_info: dict | None = None) -> dict:
     """Train ``cfg`` in ``run_dir``; returns the output manifest (with the run summary).
+
+    ``run_info`` (how the run was launched: the ``--config`` file, the Spark master and profile)
+    goes into ``run.json`` when the run is created and into ``output.json``.
 
     ``gold`` (a gold alignment file, see ``engine.gold``) adds precision, recall, F1 and AER on the
     gold pairs to every iteration's progress line and manifest (``metrics.gold``).
@@ -118,7 +122,7 @@ def train(spark, cfg: RunConfig, run_dir: str, *, resume: bool = False, resume_f
             raise RunDirError(f"{store.url} is not empty and holds no run; choose an empty or new directory")
         store.check_writable()
         store.write_json("run.json", {"format_version": FORMAT_VERSION, "config": cfg.to_dict(),
-                                      "corpus_fingerprint": fingerprint,
+                                      "corpus_fingerprint": fingerprint, **(run_info or {}),
                                       "created_at": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())})
     encoded = store.read_json("encoded.json")
     if encoded is None:
@@ -152,7 +156,7 @@ def train(spark, cfg: RunConfig, run_dir: str, *, resume: bool = False, resume_f
             spark, store, trainer.blocks(), decoder, checkpoint=f"{last.model}:{state.iteration}",
             directions=cfg.direction_list,
             extra={"config": cfg.to_dict(), "corpus_fingerprint": fingerprint, "summary": encoded,
-                   "stage_index": state.stage_index})
+                   "stage_index": state.stage_index, **(run_info or {})})
     finally:
         tables_bc.unpersist()
     log(f"output: {store.spark_path('output')} ({manifest['rows']} rows, {manifest['aligned']} aligned, "

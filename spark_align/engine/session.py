@@ -2,7 +2,8 @@
 
 Settings that matter to correctness or speed of the jobs (Arrow batches sized
 for encoded blocks, UI off by default in local mode, quiet logs) are set here;
-anything the user passes with ``--conf`` wins.
+a profile (``--profile``, ``conf/*.toml``) goes over them, spark-submit's own
+settings over the profile, and anything the user passes with ``--conf`` wins.
 """
 from __future__ import annotations
 
@@ -22,17 +23,56 @@ DEFAULT_CONF = {
 }
 
 
-def get_session(master: str = "local[*]", conf: dict[str, str] | None = None, app_name: str = "spark_align"):
-    """Get (or create) the Spark session with the project defaults plus ``conf``."""
+def submitted_settings() -> dict[str, str]:
+    """Settings ``spark-submit`` gave this driver (its ``--conf``, ``--master``, spark-defaults.conf).
+
+    Empty unless this Python process was started by ``spark-submit`` (which hands
+    it the JVM gateway through ``PYSPARK_GATEWAY_PORT``).
+    """
+    if "PYSPARK_GATEWAY_PORT" not in os.environ:
+        return {}
+    from pyspark import SparkContext
+
+    SparkContext._ensure_initialized()  # connects to the JVM spark-submit started
+    jconf = SparkContext._jvm.SparkConf(True)
+    return {kv._1(): kv._2() for kv in jconf.getAll()}
+
+
+def effective_settings(master: str | None = None, conf: dict[str, str] | None = None,
+                       profile=None, submitted: dict[str, str] | None = None) -> tuple[str, dict[str, str]]:
+    """(master, settings) from, lowest to highest precedence: :data:`DEFAULT_CONF`, the profile
+    (a :class:`spark_align.profiles.Profile`), what spark-submit gave, then ``conf``.
+
+    The master is ``master`` if given, else spark-submit's, else the profile's, else ``local[*]``.
+    """
+    submitted = submitted or {}
+    chosen = master or submitted.get("spark.master") or (profile.master if profile else None) or "local[*]"
+    settings = dict(DEFAULT_CONF)
+    if chosen.startswith("local"):
+        settings["spark.ui.enabled"] = "false"
+    if profile is not None:
+        settings.update(profile.settings)
+    settings.update({k: v for k, v in submitted.items() if k != "spark.master"})
+    settings.update(conf or {})
+    return chosen, settings
+
+
+def get_session(master: str | None = "local[*]", conf: dict[str, str] | None = None,
+                app_name: str = "spark_align", *, profile=None):
+    """Get (or create) the Spark session with the project defaults, ``profile`` and ``conf``.
+
+    ``master=None`` takes spark-submit's ``--master``, else the profile's, else ``local[*]``.
+    Under spark-submit, its own settings win over the profile's (see :func:`effective_settings`).
+    """
     from pyspark.sql import SparkSession
 
     # Executors must run the same Python as the driver (local and local-cluster modes).
     os.environ.setdefault("PYSPARK_PYTHON", sys.executable)
     os.environ.setdefault("PYSPARK_DRIVER_PYTHON", sys.executable)
-    settings = dict(DEFAULT_CONF)
-    if master.startswith("local"):
-        settings["spark.ui.enabled"] = "false"
-    settings.update(conf or {})
+    submitted = submitted_settings()
+    master, settings = effective_settings(master, conf, profile, submitted)
+    if "spark.app.name" in submitted:
+        app_name = submitted["spark.app.name"]
     builder = SparkSession.builder.master(master).appName(app_name)
     for key, value in settings.items():
         builder = builder.config(key, value)
