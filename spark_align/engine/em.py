@@ -15,6 +15,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from spark_align.config import RunConfig
+from spark_align.engine import shipping
 from spark_align.engine import tables as tables_mod
 from spark_align.engine.estep import DENSE, SCALAR, STATS_SCHEMA, from_fixed, make_estep
 from spark_align.errors import NumericalError
@@ -64,6 +65,24 @@ def m_step(spark, stats_df, directions):
     return agg, table, dense_sums
 
 
+def prune_table(table, threshold: float, directions) -> tuple:
+    """Drop entries with prob < ``threshold`` (lookups then give them ``MIN_PROB``).
+
+    Returns (kept table DataFrame, per direction {threshold, removed, kept, removed_mass}), the
+    removed mass being the sum of the dropped probabilities over all conditioning words.
+    """
+    from pyspark.sql import functions as F
+
+    below = F.col("prob") < F.lit(threshold)
+    rows = table.groupBy("dir").agg(F.count("*").alias("n"), F.sum(below.cast("long")).alias("removed"),
+                                    F.sum(F.when(below, F.col("prob")).otherwise(0.0)).alias("mass")).collect()
+    found = {tables_mod.DIRS[r["dir"]]: r for r in rows}
+    report = {d: {"threshold": threshold, "removed": int(found[d]["removed"]) if d in found else 0,
+                  "kept": int(found[d]["n"] - found[d]["removed"]) if d in found else 0,
+                  "removed_mass": float(found[d]["mass"]) if d in found else 0.0} for d in directions}
+    return table.filter(~below), report
+
+
 def init_table(spark, blocks_df, directions, init: str, seed: int, src_vocab: int, tgt_vocab: int):
     """Initial table as a DataFrame: uniform (1/|V|) or seeded random, normalised per cond word."""
     from pyspark.sql import Window
@@ -102,6 +121,7 @@ class Trainer:
         self.gold = gold  # an engine.gold.GoldMonitor: scores gold pairs after each iteration (train --gold)
         self.directions = cfg.direction_list
         self.n_words = {"forward": encoded["n_tgt_tokens"], "reverse": encoded["n_src_tokens"]}
+        self._last_per_word: dict[str, float] = {}
 
     def blocks(self):
         return self.spark.read.parquet(self.store.spark_path("encoded", "blocks"))
@@ -111,21 +131,32 @@ class Trainer:
         """One EM iteration from ``state``; returns (table path, new dense, metrics)."""
         sc = self.spark.sparkContext
         src_v, tgt_v = self.encoded["src_vocab_size"], self.encoded["tgt_vocab_size"]
-        if state.table_path is None:
-            tables = tables_mod.uniform_tables(self.directions, src_v, tgt_v)
-        else:
-            tables = tables_mod.read_tables(self.spark, state.table_path, self.directions)
-        tables_bc = sc.broadcast(tables)
+        n_entries = None if state.table_path is None else shipping.table_entries(self.spark, state.table_path)
+        path = shipping.choose_shipping(self.cfg.shipping, n_entries, self.cfg.table_budget_mb)
+        tables_bc = None
         try:
-            estep = make_estep(model, self.directions, tables_bc, state.dense)
-            stats = self.blocks().mapInArrow(estep, STATS_SCHEMA)
+            if path == "join":
+                stats = shipping.join_stats(self.spark, self.store, self.blocks(), state.table_path, model,
+                                            self.directions, state.dense)
+            else:
+                if state.table_path is None:
+                    tables = tables_mod.uniform_tables(self.directions, src_v, tgt_v)
+                else:
+                    tables = tables_mod.read_tables(self.spark, state.table_path, self.directions)
+                tables_bc = sc.broadcast(tables)
+                estep = make_estep(model, self.directions, tables_bc, state.dense)
+                stats = self.blocks().mapInArrow(estep, STATS_SCHEMA)
             agg, table, sums = m_step(self.spark, stats, self.directions)
             stage = self.cfg.stages[state.stage_index]
             rel = RunStore.checkpoint_dir(state.stage_index, stage.model, state.iteration + 1)
+            pruned = {}
+            if self.cfg.prune_below is not None:
+                table, pruned = prune_table(table, self.cfg.prune_below, self.directions)
             table.write.mode("overwrite").parquet(self.store.spark_path(rel, "lex"))
             agg.unpersist()
         finally:
-            tables_bc.unpersist()
+            if tables_bc is not None:
+                tables_bc.unpersist()
         new_dense, metrics = {}, {}
         for d in self.directions:
             n = model.dense_size()
@@ -137,7 +168,14 @@ class Trainer:
                 raise NumericalError(f"{stage.model} iteration {state.iteration + 1} ({d}): "
                                      f"log-likelihood is {loglik}")
             metrics[d] = {"loglik": loglik, "loglik_per_word": per_word, "perplexity": float(np.exp(-per_word)),
-                          "kernel_seconds": sums[d]["scalar"].get(1, 0.0), "links": sums[d]["scalar"].get(2, 0.0)}
+                          "kernel_seconds": sums[d]["scalar"].get(1, 0.0), "links": sums[d]["scalar"].get(2, 0.0),
+                          "shipping": path, "table_entries": n_entries}
+            if d in pruned:
+                metrics[d]["pruned"] = pruned[d]
+            if self.cfg.prune_below is not None and d in self._last_per_word:
+                # With pruning, this includes what the previous pruning cost (without it EM never decreases).
+                metrics[d]["loglik_per_word_change"] = per_word - self._last_per_word[d]
+            self._last_per_word[d] = per_word
         return self.store.spark_path(rel, "lex"), new_dense, metrics
 
     # -- the loop ----------------------------------------------------------------------
@@ -218,6 +256,12 @@ def progress_line(model: str, stage_index: int, iteration: int, n_iter: int, met
         if d == "gold":
             continue
         parts.append(f"{d}: loglik/word {m['loglik_per_word']:.4f} ppl {m['perplexity']:.2f}")
+        if "pruned" in m:
+            pr = m["pruned"]
+            change = m.get("loglik_per_word_change")
+            parts.append(f"{d}: pruned {pr['removed']} of {pr['removed'] + pr['kept']} entries (mass "
+                         f"{pr['removed_mass']:.3g})" + (f", loglik/word change {change:+.5f}" if change is not None
+                                                         else ""))
     if "gold" in metrics:
         from spark_align.engine.gold import progress_part
 

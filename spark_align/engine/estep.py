@@ -75,31 +75,67 @@ def make_estep(model, directions: tuple[str, ...], tables_bc, dense: dict[str, d
         for batch in batches:
             parts = []
             for _block_id, _rows, block in blocks_from_batch(batch):
-                src, tgt = ragged.split_key(block.dict_keys)
-                for direction in directions:
-                    d = DIRS.index(direction)
-                    t_local = tables[direction].local(block.dict_keys)
-                    view = block.view(direction)
-                    started = time.perf_counter()
-                    counts, stats, loglik = model.e_step(view, t_local, dense[direction])
-                    kernel_seconds = time.perf_counter() - started
-                    n_links = float(((view.cond_len + 1) * view.gen_len).sum())
-                    emitted = (tgt != 0) if direction == "forward" else (src != 0)
-                    # Dense statistics are mostly zero per block (big alignment tables); zeros sum to nothing.
-                    stat_index = np.flatnonzero(stats).astype(np.int32)
-                    values = np.concatenate([counts[emitted], stats[stat_index], [loglik, kernel_seconds, n_links]])
-                    parts.append((
-                        np.full(len(values), d, np.int8),
-                        np.concatenate([src[emitted], np.full(len(stat_index), DENSE, np.int32),
-                                        np.full(3, SCALAR, np.int32)]).astype(np.int32),
-                        np.concatenate([tgt[emitted], stat_index, np.arange(3, dtype=np.int32)]).astype(np.int32),
-                        values))
-            if not parts:
-                continue
-            d_col, s_col, t_col, v_col = (np.concatenate(x) for x in zip(*parts))
-            hi, lo = to_fixed(v_col)
-            yield pa.RecordBatch.from_arrays(
-                [pa.array(d_col), pa.array(s_col), pa.array(t_col), pa.array(hi), pa.array(lo)],
-                names=["dir", "src", "tgt", "hi", "lo"])
+                t_locals = {d: tables[d].local(block.dict_keys) for d in directions}
+                parts.extend(block_rows(model, directions, block, t_locals, dense))
+            if parts:
+                yield rows_batch(parts)
+        note_task_memory("broadcast")
 
     return estep
+
+
+def block_rows(model, directions: tuple[str, ...], block, t_locals: dict[str, np.ndarray],
+               dense: dict[str, dict]) -> list[tuple[np.ndarray, ...]]:
+    """E-step of one block given its local probabilities (one float64 per ``dict_keys`` entry per direction).
+
+    Returns (dir, src, tgt, value) array tuples, one per direction (see the module docstring).
+    """
+    src, tgt = ragged.split_key(block.dict_keys)
+    parts = []
+    for direction in directions:
+        d = DIRS.index(direction)
+        view = block.view(direction)
+        started = time.perf_counter()
+        counts, stats, loglik = model.e_step(view, t_locals[direction], dense[direction])
+        kernel_seconds = time.perf_counter() - started
+        n_links = float(((view.cond_len + 1) * view.gen_len).sum())
+        emitted = (tgt != 0) if direction == "forward" else (src != 0)
+        # Dense statistics are mostly zero per block (big alignment tables); zeros sum to nothing.
+        stat_index = np.flatnonzero(stats).astype(np.int32)
+        values = np.concatenate([counts[emitted], stats[stat_index], [loglik, kernel_seconds, n_links]])
+        parts.append((
+            np.full(len(values), d, np.int8),
+            np.concatenate([src[emitted], np.full(len(stat_index), DENSE, np.int32),
+                            np.full(3, SCALAR, np.int32)]).astype(np.int32),
+            np.concatenate([tgt[emitted], stat_index, np.arange(3, dtype=np.int32)]).astype(np.int32),
+            values))
+    return parts
+
+
+def rows_batch(parts: list[tuple[np.ndarray, ...]]) -> pa.RecordBatch:
+    """One Arrow batch of ``STATS_SCHEMA`` rows from :func:`block_rows` parts (values as fixed point)."""
+    d_col, s_col, t_col, v_col = (np.concatenate(x) for x in zip(*parts))
+    hi, lo = to_fixed(v_col)
+    return pa.RecordBatch.from_arrays(
+        [pa.array(d_col), pa.array(s_col), pa.array(t_col), pa.array(hi), pa.array(lo)],
+        names=["dir", "src", "tgt", "hi", "lo"])
+
+
+# Benchmark-only: when set (to a directory), each E-step task appends its Python worker's peak
+# resident memory there, so benchmarks/bench_scaling.py can report peak memory per executor task.
+MEMORY_ENV = "SPARK_ALIGN_BENCH_TASK_MEMORY_DIR"
+
+
+def note_task_memory(path_kind: str) -> None:
+    out_dir = os.environ.get(MEMORY_ENV)
+    if not out_dir:
+        return
+    import resource
+
+    from pyspark import TaskContext
+
+    ctx = TaskContext.get()
+    part = ctx.partitionId() if ctx is not None else -1
+    peak_kb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    with open(os.path.join(out_dir, f"{path_kind}-{os.getpid()}-{part}-{time.time_ns()}.txt"), "w") as fh:
+        fh.write(f"{peak_kb}\n")

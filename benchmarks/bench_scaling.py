@@ -1,0 +1,191 @@
+"""Local-mode training at growing corpus sizes: time per iteration, share outside the kernels, memory.
+
+Every configuration runs in fresh processes (a Spark session of its own, ``local[CORES]``):
+
+1. a child generates the corpus (``spark_align.corpus.synthetic.generate``, seed 0; source and
+   target columns only) into the work directory, once per (pairs, vocabulary);
+2. another child runs ``spark-align train``'s engine on it (``engine.run.train``) and prints one
+   JSON line of figures, read back here.
+
+Figures per configuration (iterations 2.. only: iteration 1 starts from the constant uniform
+table, which is never shipped per entry):
+
+* ``iter_s``: wall seconds per EM iteration (median), from the checkpoint manifests;
+* ``mlinks_core``: E-step kernel throughput, million links per second per core, = links /
+  kernel seconds (a link is one (generated token, cond position incl. NULL) cell; both directions);
+* ``outside``: the share of an iteration's core time spent outside the model kernels,
+  ``1 - kernel_seconds / (iteration wall seconds x cores)``, kernel_seconds summed over both
+  directions and all tasks (``metrics[dir].kernel_seconds`` of the manifest). It counts
+  everything else: Arrow (de)serialisation, the table lookup, emitting and shuffling counts,
+  the M-step, the checkpoint write, scheduling, and idle cores;
+* ``exponent``: the slope of log(iteration seconds) against log(pairs) over the sizes run;
+* ``task_rss_mb``: peak resident memory of the E-step's Python workers (``ru_maxrss`` noted by
+  each E-step task when ``SPARK_ALIGN_BENCH_TASK_MEMORY_DIR`` is set; max over tasks);
+* ``driver_rss_mb``: peak resident memory of the driver's Python process (it starts the job
+  and, on the broadcast path, reads the table). In local mode the driver JVM is also the
+  executor, so its heap is not a driver-only figure and is not reported.
+
+Run: ``python3 benchmarks/bench_scaling.py --sizes 20000,100000,300000`` (issue-2 figures),
+``--sizes 50000,200000,1000000`` (scaling), ``--memory`` (task memory against table size and
+block size for both shipping paths). The machine's other load makes every figure noisy.
+"""
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import os
+import resource
+import statistics
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+HERE = Path(__file__).resolve().parent
+sys.path.insert(0, str(HERE.parent))
+
+
+def _child_generate(args) -> None:
+    from spark_align.corpus import synthetic
+
+    table = synthetic.generate(args.pairs, seed=0, src_vocab=args.vocab, tgt_vocab=args.vocab)
+    synthetic.write_parquet(table.select(["id", "source", "target"]), args.corpus, n_files=4, overwrite=True)
+
+
+def _child_train(args) -> None:
+    from spark_align.config import CorpusConfig, RunConfig, parse_stages
+    from spark_align.engine.estep import MEMORY_ENV
+    from spark_align.engine.run import train
+    from spark_align.engine.session import get_session
+    from spark_align.store import RunStore
+
+    os.environ[MEMORY_ENV] = args.memdir  # inherited by the Python workers
+    spark = get_session(f"local[{args.cores}]", {"spark.sql.shuffle.partitions": str(2 * args.cores),
+                                                 "spark.driver.memory": "6g"})
+    cfg = RunConfig(corpus=CorpusConfig(path=args.corpus), stages=parse_stages(args.stages),
+                    block_size=args.block_size, shipping=args.shipping, prune_below=args.prune_below)
+    started = time.time()
+    train(spark, cfg, args.run, log=lambda line: print(line, file=sys.stderr, flush=True))
+    total = time.time() - started
+    rows = []
+    for ckpt in RunStore(args.run).checkpoints():
+        m = ckpt.manifest
+        dirs = m["directions"]
+        rows.append({"stage": m["stage"], "iteration": m["iteration"], "seconds": m["seconds"],
+                     "kernel_seconds": sum(m["metrics"][d]["kernel_seconds"] for d in dirs),
+                     "links": sum(m["metrics"][d]["links"] for d in dirs),
+                     "shipping": m["metrics"][dirs[0]].get("shipping"),
+                     "table_entries": m["metrics"][dirs[0]].get("table_entries"),
+                     "loglik_per_word": m["metrics"][dirs[0]]["loglik_per_word"],
+                     "pruned": {d: m["metrics"][d].get("pruned") for d in dirs}})
+    task_kb = [int(Path(args.memdir, f).read_text()) for f in os.listdir(args.memdir)]
+    print(json.dumps({"iterations": rows, "total_s": total, "task_rss_mb": max(task_kb, default=0) / 1024,
+                      "driver_rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024}))
+    spark.stop()
+
+
+def run_config(work: Path, pairs: int, *, vocab: int, shipping: str, block_size: int, stages: str,
+               cores: int, prune_below: float | None = None) -> dict:
+    corpus = work / f"corpus-{pairs}-{vocab}"
+    if not (corpus / "_done").exists():
+        subprocess.run([sys.executable, __file__, "_generate", "--pairs", str(pairs), "--vocab", str(vocab),
+                        "--corpus", str(corpus)], check=True)
+        (corpus / "_done").touch()
+    run = Path(tempfile.mkdtemp(dir=work, prefix="run-"))
+    os.rmdir(run)
+    memdir = tempfile.mkdtemp(dir=work, prefix="mem-")
+    cmd = [sys.executable, __file__, "_train", "--corpus", str(corpus), "--run", str(run), "--memdir", memdir,
+           "--shipping", shipping, "--block-size", str(block_size), "--stages", stages, "--cores", str(cores)]
+    if prune_below is not None:
+        cmd += ["--prune-below", str(prune_below)]
+    out = subprocess.run(cmd, check=True, stdout=subprocess.PIPE, text=True).stdout
+    result = json.loads(out.strip().splitlines()[-1])
+    later = [r for r in result["iterations"] if not (r["stage"] == stages.split(":")[0] and r["iteration"] == 1)]
+    result.update(pairs=pairs, vocab=vocab, shipping_mode=shipping, block_size=block_size, cores=cores,
+                  load_avg=os.getloadavg()[0])
+    if later:
+        secs = statistics.median(r["seconds"] for r in later)
+        kernel = statistics.median(r["kernel_seconds"] for r in later)
+        links = statistics.median(r["links"] for r in later)
+        result.update(iter_s=secs, kernel_s=kernel, links=links, mlinks_core=links / kernel / 1e6,
+                      outside=1.0 - kernel / (secs * cores), shipping=later[-1]["shipping"],
+                      table_entries=later[-1]["table_entries"])
+    subprocess.run(["rm", "-rf", str(run), memdir])
+    return result
+
+
+def fmt(r: dict) -> str:
+    return (f"pairs {r['pairs']:>8d} vocab {r['vocab']:>6d} block {r['block_size']:>5d} {r.get('shipping', '?'):9s} "
+            f"table {r.get('table_entries') or 0:>9d}  iter {r.get('iter_s', float('nan')):7.2f} s  "
+            f"kernel {r.get('mlinks_core', float('nan')):6.1f} M links/s/core  "
+            f"outside {100 * r.get('outside', float('nan')):5.1f}%  task RSS {r['task_rss_mb']:6.0f} MB  "
+            f"driver RSS {r['driver_rss_mb']:5.0f} MB  (load {r['load_avg']:.1f}, total {r['total_s']:.0f} s)")
+
+
+def main() -> None:
+    if len(sys.argv) > 1 and sys.argv[1] in ("_generate", "_train"):
+        p = argparse.ArgumentParser()
+        for name in ("--corpus", "--run", "--memdir", "--shipping", "--stages"):
+            p.add_argument(name)
+        for name in ("--pairs", "--vocab", "--block-size", "--cores"):
+            p.add_argument(name, type=int)
+        p.add_argument("--prune-below", type=float)
+        args = p.parse_args(sys.argv[2:])
+        (_child_generate if sys.argv[1] == "_generate" else _child_train)(args)
+        return
+    parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    parser.add_argument("--sizes", default="20000,100000,300000", help="corpus sizes in pairs")
+    parser.add_argument("--vocab", type=int, default=3000, help="words per side of the generated languages")
+    parser.add_argument("--stages", default="ibm1:3")
+    parser.add_argument("--shipping", default="auto")
+    parser.add_argument("--block-size", type=int, default=512)
+    parser.add_argument("--cores", type=int, default=2)
+    parser.add_argument("--memory", action="store_true",
+                        help="instead: task memory vs table size (vocabulary) and block size, both shipping paths")
+    parser.add_argument("--memory-pairs", type=int, default=100_000)
+    parser.add_argument("--prune", type=float, default=None, help="instead: one size with and without pruning")
+    parser.add_argument("--work", default=str(HERE / "_build" / "scaling"))
+    parser.add_argument("--jsonl", default=None, help="also append every result to this file")
+    args = parser.parse_args()
+    work = Path(args.work)
+    work.mkdir(parents=True, exist_ok=True)
+
+    def record(r: dict) -> dict:
+        print(fmt(r), flush=True)
+        if args.jsonl:
+            with open(args.jsonl, "a") as fh:
+                fh.write(json.dumps(r) + "\n")
+        return r
+
+    if args.memory:
+        n = args.memory_pairs
+        for vocab, block in ((3000, 512), (100_000, 512), (100_000, 4096), (3000, 4096)):
+            for shipping in ("broadcast", "join"):
+                record(run_config(work, n, vocab=vocab, shipping=shipping, block_size=block, stages=args.stages,
+                                  cores=args.cores))
+        return
+    if args.prune is not None:
+        n = int(args.sizes.split(",")[0])
+        for prune in (None, args.prune):
+            r = record(run_config(work, n, vocab=args.vocab, shipping=args.shipping, block_size=args.block_size,
+                                  stages=args.stages, cores=args.cores, prune_below=prune))
+            last = r["iterations"][-1]
+            print(f"  prune {prune}: final loglik/word {last['loglik_per_word']:.5f}; per iteration: "
+                  + "; ".join(f"{x['iteration']}: {x['loglik_per_word']:.5f} pruned {x['pruned']}"
+                              for x in r["iterations"]))
+        return
+    results = [record(run_config(work, int(n), vocab=args.vocab, shipping=args.shipping,
+                                 block_size=args.block_size, stages=args.stages, cores=args.cores))
+               for n in args.sizes.split(",")]
+    xs = [math.log(r["pairs"]) for r in results]
+    ys = [math.log(r["iter_s"]) for r in results]
+    if len(xs) > 1:
+        mx, my = statistics.fmean(xs), statistics.fmean(ys)
+        slope = sum((x - mx) * (y - my) for x, y in zip(xs, ys)) / sum((x - mx) ** 2 for x in xs)
+        print(f"growth exponent of iteration time vs pairs (log-log least squares): {slope:.2f}")
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,146 @@
+"""Per-block (join) and whole-table (broadcast) parameter shipping, the size rule, and pruning."""
+from __future__ import annotations
+
+import dataclasses
+import os
+import shutil
+
+import numpy as np
+import pyarrow.parquet as pq
+import pytest
+
+from spark_align.config import CorpusConfig, RunConfig
+from spark_align.corpus import synthetic
+from spark_align.engine import em, ingest, shipping, tables
+from spark_align.engine.run import train
+from spark_align.kernels import ragged
+from spark_align.store import RunStore
+from tests.engine.helpers import TOY_SOURCE, TOY_TARGET, config, manifest, read_table, write_parquet, write_text
+
+
+# -- the size rule (no Spark) --------------------------------------------------------------
+def test_auto_rule_switches_at_the_documented_threshold():
+    budget_mb = 1.0
+    at_budget = 2 ** 20 // shipping.BYTES_PER_ENTRY  # 65536 entries x 16 bytes == 1 MB
+    assert shipping.choose_shipping("auto", at_budget, budget_mb) == "broadcast"
+    assert shipping.choose_shipping("auto", at_budget + 1, budget_mb) == "join"
+    assert shipping.choose_shipping("broadcast", 10 ** 12, budget_mb) == "broadcast"
+    assert shipping.choose_shipping("join", 1, budget_mb) == "join"
+    # The initial uniform table is a constant: nothing per entry to ship, whatever is forced.
+    assert shipping.choose_shipping("join", None, budget_mb) == "broadcast"
+    with pytest.raises(ValueError):
+        shipping.choose_shipping("scatter", 1, budget_mb)
+
+
+def test_local_probs_equal_the_broadcast_lookup():
+    """Scattering joined entries gives what the broadcast path's sorted lookup gives (floor where absent)."""
+    rng = np.random.default_rng(3)
+    dict_keys = np.unique(rng.integers(0, 2 ** 40, 200))
+    table_keys = np.sort(rng.choice(dict_keys, 120, replace=False))
+    table_probs = rng.uniform(0, 1, 120)
+    direct = tables.DirectionTable(table_keys, table_probs).local(dict_keys)
+    idx = np.searchsorted(dict_keys, table_keys)
+    got = shipping.local_probs(len(dict_keys), idx, np.zeros(120, np.int8), table_probs, ("forward",))
+    assert np.array_equal(got["forward"], direct)
+    assert np.sum(got["forward"] == tables.MIN_PROB) == 80
+
+
+def test_shipping_is_not_part_of_the_resume_key_but_pruning_is():
+    c = CorpusConfig(path="x.parquet")
+    base = RunConfig(corpus=c).training_key()
+    assert RunConfig(corpus=c, shipping="join", table_budget_mb=1.0).training_key() == base
+    assert RunConfig(corpus=c, prune_below=1e-4).training_key() != base
+    # run.json files written before these options existed still resume
+    old = RunConfig(corpus=c).to_dict()
+    for key in ("shipping", "table_budget_mb", "prune_below"):
+        old.pop(key)
+    assert RunConfig.from_dict(old).training_key() == base
+
+
+# -- the Spark job ---------------------------------------------------------------------------
+def _tables_by_iteration(run_dir: str) -> dict[str, object]:
+    out = {}
+    for ckpt in RunStore(run_dir).checkpoints():
+        stage_dir = f"{ckpt.stage_index:02d}-{ckpt.model}"
+        out[f"{stage_dir}/{ckpt.iteration}"] = read_table(run_dir, stage_dir, ckpt.iteration)
+    return out
+
+
+def _retrain(spark, base_run: str, new_run: str, cfg: RunConfig) -> dict[str, object]:
+    """Train ``cfg`` again on ``base_run``'s ingested corpus (copied), from the uniform start."""
+    os.makedirs(new_run)
+    shutil.copytree(os.path.join(base_run, "encoded"), os.path.join(new_run, "encoded"))
+    store = RunStore(new_run)
+    trainer = em.Trainer(spark, cfg, store, RunStore(base_run).read_json("encoded.json"),
+                         fingerprint="test", log=lambda _: None)
+    trainer.train(em.TrainState(0, 0, None, {}))
+    return _tables_by_iteration(new_run)
+
+
+@pytest.mark.slow
+def test_join_and_broadcast_shipping_give_bit_identical_tables_and_pruning(spark, tmp_path):
+    generated = synthetic.generate(400, seed=5, src_vocab=300, tgt_vocab=300).select(["source", "target"])
+    cfg = config(CorpusConfig(path=write_parquet(tmp_path, generated)), "ibm1:2,hmm:1", block_size=64,
+                 shipping="broadcast")
+    base = str(tmp_path / "base")
+    store = RunStore(base)
+    store.write_json("encoded.json", dataclasses.asdict(ingest.ingest(spark, cfg, store)))
+    want = _retrain(spark, base, str(tmp_path / "broadcast"), cfg)
+    base_broadcast = str(tmp_path / "broadcast")
+    assert len(want) == 3
+
+    # auto with a budget one entry too small for the first table -> join for every later iteration;
+    # with pruning at 0, which removes nothing (every entry is >= 1e-12), through the pruning path
+    n_entries = want["00-ibm1/1"].num_rows
+    budget = (n_entries * shipping.BYTES_PER_ENTRY - 1) / 2 ** 20
+    joined = str(tmp_path / "join")
+    got = _retrain(spark, base, joined, dataclasses.replace(cfg, shipping="auto", table_budget_mb=budget,
+                                                            prune_below=0.0))
+    assert sorted(got) == sorted(want)
+    for key in want:
+        for col in ("dir", "src", "tgt", "prob"):
+            assert np.array_equal(got[key].column(col).to_numpy(), want[key].column(col).to_numpy()), (key, col)
+    assert manifest(joined, "00-ibm1", 1)["metrics"]["forward"]["shipping"] == "broadcast"  # uniform: a constant
+    assert manifest(joined, "00-ibm1", 2)["metrics"]["forward"]["shipping"] == "join"
+    assert manifest(joined, "00-ibm1", 1)["metrics"]["forward"]["pruned"]["removed"] == 0
+    assert manifest(base_broadcast, "00-ibm1", 2)["metrics"]["forward"]["shipping"] == "broadcast"
+    for d in ("forward", "reverse"):
+        assert (manifest(joined, "01-hmm", 1)["metrics"][d]["loglik"]
+                == manifest(base_broadcast, "01-hmm", 1)["metrics"][d]["loglik"])
+    assert os.path.exists(os.path.join(joined, "encoded", "block_dict", "_SUCCESS"))
+
+    # pruning at 1e-2 drops entries: only those >= threshold stay, and the manifest says how many went
+    threshold = 1e-2
+    got = _retrain(spark, base, str(tmp_path / "prune"),
+                   dataclasses.replace(cfg, prune_below=threshold, stages=cfg.stages[:1]))
+    full, kept = want["00-ibm1/1"], got["00-ibm1/1"]
+    probs = full.column("prob").to_numpy()
+    assert kept.num_rows == int(np.sum(probs >= threshold)) < full.num_rows
+    report = manifest(str(tmp_path / "prune"), "00-ibm1", 1)["metrics"]
+    removed = sum(report[d]["pruned"]["removed"] for d in ("forward", "reverse"))
+    assert removed == full.num_rows - kept.num_rows
+    mass = sum(report[d]["pruned"]["removed_mass"] for d in ("forward", "reverse"))
+    assert mass == pytest.approx(float(probs[probs < threshold].sum()), rel=1e-9)
+    assert "loglik_per_word_change" in manifest(str(tmp_path / "prune"), "00-ibm1", 2)["metrics"]["forward"]
+
+
+@pytest.mark.slow
+def test_join_shipping_matches_nltk_ibm1(spark, tmp_path):
+    """Per-block shipping trains the same t(target | source) as nltk.translate.IBMModel1 (to 1e-9)."""
+    from nltk.translate import AlignedSent, IBMModel1
+
+    s, t = write_text(tmp_path, TOY_SOURCE, TOY_TARGET)
+    run_dir = str(tmp_path / "run")
+    train(spark, config(CorpusConfig(source_text=s, target_text=t), "ibm1:3", directions="forward",
+                        shipping="join"), run_dir, log=lambda _: None)
+    assert manifest(run_dir, "00-ibm1", 3)["metrics"]["forward"]["shipping"] == "join"
+    reference = IBMModel1([AlignedSent(b.split(), a.split()) for a, b in zip(TOY_SOURCE, TOY_TARGET)], 3)
+    vocab = {}
+    for side in ("source", "target"):
+        v = pq.read_table(os.path.join(run_dir, "vocab", side))
+        vocab[side] = dict(zip(v.column("id").to_pylist(), v.column("word").to_pylist()))
+    table = read_table(run_dir, "00-ibm1", 3).to_pydict()
+    for si, ti, p in zip(table["src"], table["tgt"], table["prob"]):
+        want = reference.translation_table[vocab["target"][ti]][None if si == 0 else vocab["source"][si]]
+        assert p == pytest.approx(want, rel=1e-9, abs=1e-15)
+    assert ragged.NULL_ID == 0
