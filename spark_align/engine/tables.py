@@ -14,6 +14,15 @@ broadcasting. Each block then looks up only its own dictionary
 (``searchsorted``, n_dict log(table size) per block per iteration) and runs
 its E-step on that local slice, so the per-link lookup in the kernel is a
 gather from a small array.
+
+Per-block shipping (``engine.shipping``): when the table is larger than a
+budget (``--shipping auto``, 16 bytes x entries > ``--table-budget-mb``) or
+when forced (``--shipping join``), each block instead receives only its own
+dictionary's entries through a Spark join, and nothing table-sized is held by
+the driver or by any task. Both paths give every block the same local vector
+(``MIN_PROB`` for keys absent from the table, e.g. pruned ones), so results are
+bit-identical. The decoding pass of the output (``engine.output``) still uses
+this module's broadcast.
 """
 from __future__ import annotations
 
