@@ -140,21 +140,25 @@ def iteration_rows(checkpoints: Sequence[Checkpoint]) -> list[dict]:
     return rows
 
 
-def gold_scores(metrics: dict, prefix: str = "") -> dict[str, dict]:
-    """Every dict holding an ``aer`` entry inside a manifest's metrics, by where it sits.
+def gold_scores(metrics: dict) -> dict[str, dict]:
+    """AER entries (dicts holding ``aer``) found anywhere in a manifest's metrics, by where they sit.
 
-    ``{"gold": {"aer": ..}}`` gives ``{"gold": {...}}``; ``{"gold": {"forward": {"aer": ..}}}``
-    gives ``{"gold forward": {...}}``; a direction's own ``gold`` entry gives ``{"forward gold": ...}``.
+    Training with gold links stores ``metrics.gold`` = the scores of the output
+    alignment plus ``forward`` and ``reverse`` entries; that gives the labels
+    ``alignment``, ``forward`` and ``reverse``. Entries elsewhere are labelled by
+    their path (``forward gold`` for ``metrics.forward.gold``).
     """
-    found = {}
-    for key, value in metrics.items():
-        if not isinstance(value, dict):
-            continue
-        label = f"{prefix} {key}".strip()
-        if "aer" in value and isinstance(value["aer"], (int, float)):
-            found[label] = value
-        else:
-            found.update(gold_scores(value, label))
+    found: dict[str, dict] = {}
+
+    def walk(node: dict, path: tuple[str, ...]) -> None:
+        if "aer" in node and isinstance(node["aer"], (int, float)):
+            label = " ".join(path[1:] if path[:1] == ("gold",) else path) or "alignment"
+            found[label] = node
+        for key, value in node.items():
+            if isinstance(value, dict):
+                walk(value, path + (str(key),))
+
+    walk(metrics, ())
     return found
 
 
@@ -459,7 +463,7 @@ def aer_figure(rows: list[dict]):
     _stage_bands(ax, rows)
     for n, label in enumerate(labels):
         pts = [(r["step"], r["gold"][label]["aer"]) for r in rows if label in r["gold"]]
-        ax.plot(*zip(*pts), label=label, linewidth=1.8, markersize=6, **GOLD_STYLES[n % len(GOLD_STYLES)])
+        ax.plot(*zip(*pts), label=f"{label} ({len(pts)} iterations)" if len(pts) < len(rows) else label, linewidth=1.8, markersize=6, **GOLD_STYLES[n % len(GOLD_STYLES)])
     _iteration_axis(ax, rows)
     ax.set_title("alignment error rate against the gold links (lower is better)", pad=18)
     ax.set_ylabel("AER")
@@ -478,25 +482,30 @@ def grid_figure(pair: PairGrid, directions: Sequence[str], symmetrization: str):
         panels.append((f"symmetrized  ({symmetrization})", mean, pair.links.get("symmetrized", [])))
     n_src, n_tgt = len(pair.src_words), len(pair.tgt_words)
     label_room = 0.075 * max(len(w) for w in pair.src_words + pair.tgt_words + ["x"])
-    # Size cells so the row of panels fits the page at its natural size; panels stacked if cells get too small.
-    cell = min(0.27, (PAGE_INCHES - 1.0 - len(panels) * (label_room + 0.3)) / (len(panels) * max(n_tgt, 1)))
-    stacked = cell < 0.17
-    if stacked:
-        cell = min(0.27, (PAGE_INCHES - 1.0 - label_room - 0.3) / max(n_tgt, 1))
-    ncols, nrows = (1, len(panels)) if stacked else (len(panels), 1)
+    # Size cells so a row of panels fits the page at its natural size; fewer panels a row if cells get too small.
+    for ncols in sorted({len(panels), min(2, len(panels)), 1}, reverse=True):
+        cell = min(0.27, (PAGE_INCHES - 1.0 - ncols * (label_room + 0.3)) / (ncols * max(n_tgt, 1)))
+        if cell >= 0.17:
+            break
+    cell = max(cell, 0.1)
+    nrows = -(-len(panels) // ncols)
+    font = 9 if cell >= 0.2 else 8
     width = ncols * (n_tgt * cell + label_room + 0.3) + 0.8
     height = nrows * (n_src * cell + label_room + 0.7) + 0.3
     fig, axes = plt.subplots(nrows, ncols, figsize=(max(width, 4), max(height, 2.5)), squeeze=False,
                              constrained_layout=True)
     image = None
+    spare = axes.ravel()[len(panels):]
+    for ax in spare:
+        ax.axis("off")
     for ax, (title, post, links) in zip(axes.ravel(), panels):
         shade = post if post is not None else np.zeros((n_src, n_tgt))
         image = ax.imshow(shade, cmap="Greys", vmin=0.0, vmax=1.25, aspect="equal", interpolation="nearest")
         if links:
             src_i, tgt_j = [a[0] for a in links], [a[1] for a in links]
-            ax.scatter(tgt_j, src_i, s=46, facecolors="white", edgecolors="black", linewidths=1.4, zorder=3)
-        ax.set_xticks(range(n_tgt), pair.tgt_words, rotation=90, fontsize=9)
-        ax.set_yticks(range(n_src), pair.src_words, fontsize=9)
+            ax.scatter(tgt_j, src_i, s=46 * (cell / 0.27) ** 2, facecolors="white", edgecolors="black", linewidths=1.4, zorder=3)
+        ax.set_xticks(range(n_tgt), pair.tgt_words, rotation=90, fontsize=font)
+        ax.set_yticks(range(n_src), pair.src_words, fontsize=font)
         ax.xaxis.tick_top()
         ax.tick_params(length=0)
         ax.set_xticks(np.arange(-0.5, n_tgt, 1), minor=True)
@@ -509,8 +518,12 @@ def grid_figure(pair: PairGrid, directions: Sequence[str], symmetrization: str):
         ax.xaxis.set_label_position("bottom")
         ax.set_xlabel(title, fontsize=10, loc="left", labelpad=6)
     if image is not None and any(p[1] is not None for p in panels):
-        bar = fig.colorbar(image, ax=axes.ravel().tolist(), shrink=min(0.8, 3.0 / max(height, 1)), pad=0.02,
-                           aspect=18)
+        if len(spare):  # the free slot of a 2 x 2 layout holds the scale
+            bar = fig.colorbar(image, cax=spare[0].inset_axes([0.04, 0.3, 0.05, 0.6]))
+        else:
+            bar = fig.colorbar(image, ax=axes.ravel().tolist(), shrink=min(0.8, 3.0 / max(height, 1)), pad=0.02,
+                               aspect=18)
+        bar.ax.grid(False)
         bar.set_ticks([0, 0.25, 0.5, 0.75, 1.0])
         bar.set_label("posterior")
         bar.ax.set_ylim(0, 1)

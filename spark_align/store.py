@@ -32,6 +32,9 @@ FORMAT_VERSION = 1
 
 # Spark (Hadoop) scheme -> fsspec scheme, where they differ.
 SPARK_TO_FSSPEC = {"s3a": "s3", "s3n": "s3", "gs": "gcs", "abfss": "abfs", "wasbs": "abfs"}
+# fsspec protocols whose makedirs creates a bucket or container: never called there (a typo
+# in a bucket name must fail, not create a bucket); object keys need no directories.
+BUCKET_PROTOCOLS = frozenset({"s3", "s3a", "gcs", "gs", "abfs", "az", "abfss", "adl"})
 
 
 def fsspec_url(url: str) -> str:
@@ -65,6 +68,8 @@ class RunStore:
             self.fs, self.root = fsspec.core.url_to_fs(fsspec_url(self.url))
         except (ImportError, ValueError) as exc:
             raise RunDirError(f"run directory {run_dir}: cannot open it ({exc})") from None
+        protocols = self.fs.protocol if isinstance(self.fs.protocol, tuple) else (self.fs.protocol,)
+        self._has_dirs = not (set(protocols) & BUCKET_PROTOCOLS)
         if "://" not in self.url:
             import os
 
@@ -85,6 +90,7 @@ class RunStore:
         """Data files (name -> size in bytes) under a sub-path, skipping hidden/marker files."""
         base = self._path(*parts)
         out = {}
+        self._forget_listings()
         for path, info in self.fs.find(base, detail=True).items():
             name = posixpath.relpath(path, base)
             if not any(seg.startswith(("_", ".")) for seg in name.split("/")):
@@ -94,11 +100,18 @@ class RunStore:
     def _path(self, *parts: str) -> str:
         return posixpath.join(self.root, *parts)
 
+    def _forget_listings(self) -> None:
+        # Object-store backends cache directory listings; Spark (another process) writes
+        # table files and other drivers commit manifests behind their back.
+        self.fs.invalidate_cache()
+
     def exists(self, *parts: str) -> bool:
+        self._forget_listings()
         return self.fs.exists(self._path(*parts))
 
     def remove(self, *parts: str) -> None:
         path = self._path(*parts)
+        self._forget_listings()
         if self.fs.exists(path):
             self.fs.rm(path, recursive=True)
 
@@ -106,7 +119,8 @@ class RunStore:
         """Fail early, with the path, if the run directory cannot be written."""
         probe = self._path(f".write-probe-{uuid.uuid4().hex}")
         try:
-            self.fs.makedirs(self.root, exist_ok=True)
+            if self._has_dirs:
+                self.fs.makedirs(self.root, exist_ok=True)
             with self.fs.open(probe, "w") as fh:
                 fh.write("ok")
             self.fs.rm(probe)
@@ -116,7 +130,8 @@ class RunStore:
     # -- small JSON files, committed atomically -----------------------------------------
     def write_json(self, relpath: str, obj: Any) -> None:
         path = self._path(relpath)
-        self.fs.makedirs(posixpath.dirname(path), exist_ok=True)
+        if self._has_dirs:
+            self.fs.makedirs(posixpath.dirname(path), exist_ok=True)
         tmp = f"{path}.tmp-{uuid.uuid4().hex}"
         with self.fs.open(tmp, "w") as fh:
             fh.write(json.dumps(obj, indent=1, sort_keys=True, default=_json_default))
@@ -124,6 +139,7 @@ class RunStore:
 
     def read_json(self, relpath: str) -> Any:
         path = self._path(relpath)
+        self._forget_listings()
         try:
             with self.fs.open(path, "r") as fh:
                 return json.load(fh)
@@ -140,6 +156,7 @@ class RunStore:
     def checkpoints(self) -> list[Checkpoint]:
         """Committed checkpoints (those with a readable manifest), oldest first."""
         base = self._path("checkpoints")
+        self._forget_listings()
         if not self.fs.exists(base):
             return []
         found = []

@@ -223,20 +223,25 @@ def test_gold_metrics_give_an_aer_plot_and_columns(run, tmp_path):
         with open(path) as fh:
             m = json.load(fh)
         aers.append(0.5 / (n + 1))
-        m["metrics"]["gold"] = {"precision": 0.8, "recall": 0.7, "f1": 0.75, "aer": aers[-1]}
+        m["metrics"]["gold"] = {"precision": 0.8, "recall": 0.7, "f1": 0.75, "aer": aers[-1], "n_missing": 0,
+                                "forward": {"precision": 0.7, "recall": 0.7, "f1": 0.7, "aer": 0.3},
+                                "reverse": {"precision": 0.6, "recall": 0.7, "f1": 0.65, "aer": 0.35}}
         with open(path, "w") as fh:
             json.dump(m, fh)
     text = build_report(gold_run, n_pairs=1)
     p = parse(text)
     assert len(p.images) == 4  # convergence, AER, one grid, scores
-    assert [float(r["gold.gold.aer"]["value"]) for r in p.rows] == aers
+    assert [float(r["gold.alignment.aer"]["value"]) for r in p.rows] == aers
+    assert [float(r["gold.reverse.aer"]["value"]) for r in p.rows] == [0.35] * len(aers)
 
 
 def test_gold_scores_found_wherever_they_sit():
-    assert gold_scores({"forward": {"loglik": -1.0}, "gold": {"aer": 0.2, "f1": 0.8}}) == {
-        "gold": {"aer": 0.2, "f1": 0.8}}
-    assert set(gold_scores({"gold": {"forward": {"aer": 0.3}, "symmetrized": {"aer": 0.1}}})) == {
-        "gold forward", "gold symmetrized"}
+    # the shape training with gold writes: output alignment scores plus one entry per direction
+    metrics = {"forward": {"loglik": -1.0}, "gold": {"aer": 0.2, "f1": 0.8, "n_missing": 0, "file": "g.txt",
+                                                     "forward": {"aer": 0.3}, "reverse": {"aer": 0.25}}}
+    found = gold_scores(metrics)
+    assert set(found) == {"alignment", "forward", "reverse"}
+    assert found["alignment"]["aer"] == 0.2 and found["reverse"]["aer"] == 0.25
     assert set(gold_scores({"forward": {"loglik": -2.0, "gold": {"aer": 0.3}}})) == {"forward gold"}
     assert gold_scores({"forward": {"loglik": -2.0}}) == {}
 
