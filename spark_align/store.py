@@ -97,6 +97,24 @@ class RunStore:
                 out[name] = int(info["size"])
         return out
 
+    def checksums(self, *parts: str) -> dict[str, str]:
+        """CRC-32 (hex) of every data file under a sub-path, as :meth:`files` lists them.
+
+        Sizes catch truncation; the checksum also catches bytes changed in place.
+        It costs one read of the files through fsspec (about 1 GB/s locally).
+        """
+        import zlib
+
+        base = self._path(*parts)
+        out = {}
+        for name in self.files(*parts):
+            crc = 0
+            with self.fs.open(posixpath.join(base, name), "rb") as fh:
+                for chunk in iter(lambda: fh.read(8 << 20), b""):
+                    crc = zlib.crc32(chunk, crc)
+            out[name] = f"{crc:08x}"
+        return out
+
     def _path(self, *parts: str) -> str:
         return posixpath.join(self.root, *parts)
 
@@ -128,13 +146,26 @@ class RunStore:
             raise RunDirError(f"run directory {self.url} is not writable: {exc.strerror or exc}") from None
 
     # -- small JSON files, committed atomically -----------------------------------------
-    def write_json(self, relpath: str, obj: Any) -> None:
+    def write_json(self, relpath: str, obj: Any, *, kill_point: tuple | None = None) -> None:
+        """Write ``obj`` to a temporary name, then move it into place (the commit).
+
+        ``kill_point`` (point, model, iteration) names a test-only kill point
+        (``engine.faults``): the process dies with the temporary file half written.
+        """
         path = self._path(relpath)
         if self._has_dirs:
             self.fs.makedirs(posixpath.dirname(path), exist_ok=True)
         tmp = f"{path}.tmp-{uuid.uuid4().hex}"
+        text = json.dumps(obj, indent=1, sort_keys=True, default=_json_default)
         with self.fs.open(tmp, "w") as fh:
-            fh.write(json.dumps(obj, indent=1, sort_keys=True, default=_json_default))
+            if kill_point is not None:
+                from spark_align.engine import faults
+
+                if faults.wanted(*kill_point):
+                    fh.write(text[: len(text) // 2])
+                    fh.flush()
+                    faults.kill_now(f"{':'.join(map(str, kill_point))} with {tmp} half written")
+            fh.write(text)
         self.fs.mv(tmp, path)
 
     def read_json(self, relpath: str) -> Any:
@@ -155,11 +186,22 @@ class RunStore:
 
     def checkpoints(self) -> list[Checkpoint]:
         """Committed checkpoints (those with a readable manifest), oldest first."""
+        return self._scan_checkpoints()[0]
+
+    def uncommitted_checkpoints(self) -> list[tuple[str, str]]:
+        """(directory, why) of checkpoint directories readers ignore: no manifest, or an unreadable one.
+
+        A directory without ``manifest.json`` is what a crash before the commit
+        leaves (table files, perhaps a truncated ``manifest.json.tmp-*``).
+        """
+        return self._scan_checkpoints()[1]
+
+    def _scan_checkpoints(self) -> tuple[list[Checkpoint], list[tuple[str, str]]]:
         base = self._path("checkpoints")
         self._forget_listings()
         if not self.fs.exists(base):
-            return []
-        found = []
+            return [], []
+        found, ignored = [], []
         for stage_dir in sorted(self.fs.ls(base, detail=False)):
             stage_name = posixpath.basename(stage_dir.rstrip("/"))
             idx, _, model = stage_name.partition("-")
@@ -172,13 +214,18 @@ class RunStore:
                 rel = f"checkpoints/{stage_name}/{it_name}/manifest.json"
                 try:
                     manifest = self.read_json(rel)
-                except CheckpointError:
+                except CheckpointError as exc:
+                    ignored.append((posixpath.dirname(rel), f"unreadable manifest: {exc}"))
                     continue
                 if manifest is None:
+                    ignored.append((posixpath.dirname(rel), "no manifest.json (never committed)"))
+                    continue
+                if not isinstance(manifest, dict):
+                    ignored.append((posixpath.dirname(rel), "manifest.json is not a JSON object"))
                     continue
                 found.append(Checkpoint(int(idx), model, int(it_name[5:]), manifest))
         found.sort(key=lambda c: (c.stage_index, c.iteration))
-        return found
+        return found, ignored
 
 
 def _json_default(obj: Any) -> Any:

@@ -15,6 +15,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from spark_align.config import RunConfig
+from spark_align.engine import faults
 from spark_align.engine import shipping
 from spark_align.engine import tables as tables_mod
 from spark_align.engine.estep import DENSE, SCALAR, STATS_SCHEMA, from_fixed, make_estep
@@ -146,13 +147,16 @@ class Trainer:
                 tables_bc = sc.broadcast(tables)
                 estep = make_estep(model, self.directions, tables_bc, state.dense)
                 stats = self.blocks().mapInArrow(estep, STATS_SCHEMA)
-            agg, table, sums = m_step(self.spark, stats, self.directions)
             stage = self.cfg.stages[state.stage_index]
+            with faults.arm_task_kill(self.spark, "estep", stage.model, state.iteration + 1):
+                agg, table, sums = m_step(self.spark, stats, self.directions)
             rel = RunStore.checkpoint_dir(state.stage_index, stage.model, state.iteration + 1)
             pruned = {}
             if self.cfg.prune_below is not None:
                 table, pruned = prune_table(table, self.cfg.prune_below, self.directions)
-            table.write.mode("overwrite").parquet(self.store.spark_path(rel, "lex"))
+            with faults.kill_during_write("mstep-write", stage.model, state.iteration + 1,
+                                          self.store.spark_path(rel, "lex")):
+                table.write.mode("overwrite").parquet(self.store.spark_path(rel, "lex"))
             agg.unpersist()
         finally:
             if tables_bc is not None:
@@ -229,11 +233,11 @@ class Trainer:
             "metrics": metrics,
             "dense": dense_to_json(dense),
             "seconds": seconds,
-            "table": {"path": "lex", "files": files},
+            "table": {"path": "lex", "files": files, "crc32": self.store.checksums(rel, "lex")},
             "config": self.cfg.to_dict(),
             "corpus_fingerprint": self.fingerprint,
             "committed_at": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
-        })
+        }, kill_point=("manifest", model_name, iteration))
 
 
 def iteration_event(model: str, stage_index: int, iteration: int, n_iter: int, metrics: dict, seconds: float,

@@ -24,6 +24,7 @@ import time
 import numpy as np
 import pyarrow as pa
 
+from spark_align.engine import faults
 from spark_align.engine.ingest import blocks_from_batch
 from spark_align.engine.tables import DIRS
 from spark_align.kernels import ragged
@@ -52,6 +53,8 @@ def from_fixed(hi, lo):
 
 
 def _maybe_fail() -> None:
+    """Test-only faults at the start of every E-step task (both shipping paths call it)."""
+    faults.kill_in_task()
     marker_dir = os.environ.get(FAIL_ONCE_ENV)
     if not marker_dir:
         return

@@ -15,6 +15,7 @@ import time
 import numpy as np
 import pyarrow as pa
 
+from spark_align.engine import faults
 from spark_align.engine.ingest import ROW, blocks_from_batch
 from spark_align.kernels import ragged
 from spark_align.store import FORMAT_VERSION, RunStore
@@ -147,7 +148,9 @@ def write_output(spark, store: RunStore, blocks_df, decoder, *, checkpoint: str,
     out = (snapshot.join(decoded, on=ROW, how="left").join(skipped, on=ROW, how="left")
            .orderBy(ROW))
     started = time.time()
-    out.write.mode("overwrite").parquet(store.spark_path("output"))
+    ckpt_model, _, ckpt_iter = checkpoint.partition(":")
+    with faults.kill_during_write("output-write", ckpt_model, ckpt_iter, store.spark_path("output")):
+        out.write.mode("overwrite").parquet(store.spark_path("output"))
     written = spark.read.parquet(store.spark_path("output"))
     counts = written.agg(F.count("*").alias("rows"),
                          F.count("alignment").alias("aligned"),
@@ -160,5 +163,5 @@ def write_output(spark, store: RunStore, blocks_df, decoder, *, checkpoint: str,
         "seconds": time.time() - started,
         **extra,
     }
-    store.write_json("output.json", manifest)
+    store.write_json("output.json", manifest, kill_point=("output-commit", ckpt_model, ckpt_iter))
     return manifest

@@ -8,7 +8,7 @@ from collections.abc import Callable
 from spark_align.config import RunConfig
 from spark_align.engine import em, ingest, output, tables
 from spark_align.engine import gold as gold_mod
-from spark_align.errors import CheckpointError, CheckpointMismatchError, RunDirError
+from spark_align.errors import CheckpointError, CheckpointMismatchError, InputError, RunDirError
 from spark_align.fingerprint import corpus_fingerprint
 from spark_align.store import FORMAT_VERSION, Checkpoint, RunStore
 
@@ -51,8 +51,15 @@ def verify_checkpoint(store: RunStore, ckpt: Checkpoint) -> str | None:
     if actual != expected:
         missing = sorted(set(expected) - set(actual))
         changed = sorted(k for k in expected if k in actual and actual[k] != expected[k])
+        extra = sorted(set(actual) - set(expected))
         return (f"table files differ from the manifest (missing: {missing[:3]}, "
-                f"wrong size: {changed[:3]})")
+                f"wrong size: {changed[:3]}, unexpected: {extra[:3]})")
+    crc = ckpt.manifest["table"].get("crc32")
+    if crc is not None:
+        got = store.checksums(rel, "lex")
+        bad = sorted(k for k in crc if got.get(k) != crc[k])
+        if bad:
+            return f"table file {bad[0]} has CRC-32 {got.get(bad[0])}, the manifest says {crc[bad[0]]}"
     return None
 
 
@@ -60,6 +67,8 @@ def starting_state(store: RunStore, cfg: RunConfig, resume_from: str | None,
                    log: Callable[[str], None]) -> em.TrainState | None:
     """The newest intact checkpoint (or the one named by ``resume_from``); None = start fresh."""
     ckpts = store.checkpoints()
+    for where, why in store.uncommitted_checkpoints():
+        log(f"note: ignoring {where}: {why}")
     if resume_from is not None:
         model, _, it = resume_from.partition(":")
         chosen = [c for c in ckpts if c.model == model and str(c.iteration) == it.strip()]
@@ -112,6 +121,7 @@ def train(spark, cfg: RunConfig, run_dir: str, *, resume: bool = False, resume_f
     if existing is None and continuing and store.exists():
         if store.checkpoints() or store.exists("corpus"):
             raise RunDirError(f"{store.url} has no run.json: it is not a spark_align run directory")
+    had_dir = store.exists()
     ingest.validate(spark, cfg)
     gold_set = gold_mod.load_gold(gold, cfg.corpus, id_column=gold_id_column) if gold else None
     fingerprint = corpus_fingerprint(spark, cfg.corpus)
@@ -127,10 +137,23 @@ def train(spark, cfg: RunConfig, run_dir: str, *, resume: bool = False, resume_f
     encoded = store.read_json("encoded.json")
     if encoded is None:
         log(f"ingesting {cfg.corpus.path or cfg.corpus.source_text} ...")
-        summary = ingest.ingest(spark, cfg, store)
+        try:
+            summary = ingest.ingest(spark, cfg, store)
+        except InputError:
+            if existing is None:  # this call claimed the directory: leave nothing of the attempt behind
+                for path in store.fs.ls(store.root, detail=False):
+                    store.fs.rm(path, recursive=True)
+                if not had_dir:
+                    store.fs.rmdir(store.root)
+            raise
         encoded = dataclasses.asdict(summary)
+        if cfg.corpus.id_column:
+            encoded["duplicate_ids"] = count_duplicate_ids(spark, store, cfg.corpus.id_column)
         store.write_json("encoded.json", {**encoded, "corpus_fingerprint": fingerprint})
     log(summary_line(encoded))
+    if encoded.get("duplicate_ids"):
+        log(f"warning: {encoded['duplicate_ids']} row(s) repeat a value of id column {cfg.corpus.id_column!r}; "
+            f"ids are only carried to the output (rows are identified by _row), so nothing is merged")
     monitor = gold_mod.GoldMonitor.build(spark, cfg, store, gold_set, log) if gold_set else None
     trainer = em.Trainer(spark, cfg, store, encoded, fingerprint=fingerprint, log=log, gold=monitor)
     state = starting_state(store, cfg, resume_from, log) if continuing else None
@@ -164,6 +187,15 @@ def train(spark, cfg: RunConfig, run_dir: str, *, resume: bool = False, resume_f
     return manifest
 
 
+def count_duplicate_ids(spark, store: RunStore, column: str) -> int:
+    """Rows whose id value (null included) an earlier row already has: one aggregation over the snapshot."""
+    from pyspark.sql import functions as F
+
+    counts = spark.read.parquet(store.spark_path("corpus")).groupBy(column).count()
+    extra = counts.filter(F.col("count") > 1).agg(F.sum(F.col("count") - 1)).collect()[0][0]
+    return int(extra or 0)
+
+
 def summary_line(encoded: dict) -> str:
     skipped = ", ".join(f"{k} {v}" for k, v in sorted(encoded["skipped"].items())) or "none"
     return (f"corpus: {encoded['n_rows']} pairs, {encoded['n_kept']} kept (skipped: {skipped}); "
@@ -183,5 +215,6 @@ def _random_init(spark, cfg: RunConfig, store: RunStore, trainer: em.Trainer, en
     store.write_json(f"{rel}/manifest.json", {
         "format_version": FORMAT_VERSION, "stage_index": 0, "stage": stage.model, "iteration": 0,
         "init": cfg.init, "seed": cfg.seed, "dense": em.dense_to_json(dense),
-        "table": {"path": "lex", "files": store.files(rel, "lex")}, "config": cfg.to_dict()})
+        "table": {"path": "lex", "files": store.files(rel, "lex"), "crc32": store.checksums(rel, "lex")},
+        "config": cfg.to_dict()})
     return em.TrainState(0, 0, store.spark_path(rel, "lex"), dense)
