@@ -2,7 +2,9 @@
 
     python3 -m spark_align.packaging dist/        # -> dist/spark_align-VERSION.zip
 
-The zip holds the ``spark_align`` package's Python sources only; the cluster's
+The zip holds the ``spark_align`` package's Python sources and the shipped
+profiles (``conf/*.toml`` as ``spark_align/conf/``, so ``--profile NAME`` works
+wherever the driver runs); the cluster's
 Python needs the declared dependencies (pyspark, numpy, pyarrow, pandas,
 fsspec, plus the storage backend of the run directory's scheme). The archive is
 reproducible: files in sorted order with a fixed timestamp, so the same sources
@@ -25,6 +27,15 @@ def package_files(package_dir: Path) -> list[Path]:
     return sorted(p for p in package_dir.rglob("*.py") if "__pycache__" not in p.parts)
 
 
+def archive_members(package_dir: Path) -> list[tuple[str, Path]]:
+    """(name in the zip, source file): the package's sources, then the checkout's profiles."""
+    members = [(f"spark_align/{p.relative_to(package_dir).as_posix()}", p) for p in package_files(package_dir)]
+    conf = package_dir.parent / "conf"
+    if conf.is_dir():
+        members += [(f"spark_align/conf/{p.name}", p) for p in sorted(conf.glob("*.toml"))]
+    return members
+
+
 def build_zip(out_dir: str, package_dir: str | None = None) -> str:
     """Write ``OUT_DIR/spark_align-VERSION.zip``; returns its path.
 
@@ -41,8 +52,8 @@ def build_zip(out_dir: str, package_dir: str | None = None) -> str:
     tmp = target.with_name(f".{target.name}.tmp-{os.getpid()}")
     try:
         with zipfile.ZipFile(tmp, "w", compression=zipfile.ZIP_DEFLATED) as zf:
-            for path in package_files(src):
-                info = zipfile.ZipInfo(f"spark_align/{path.relative_to(src).as_posix()}", date_time=FIXED_TIME)
+            for name, path in archive_members(src):
+                info = zipfile.ZipInfo(name, date_time=FIXED_TIME)
                 info.compress_type = zipfile.ZIP_DEFLATED
                 info.external_attr = 0o644 << 16
                 zf.writestr(info, path.read_bytes())

@@ -67,12 +67,14 @@ _FIELDS_ATTR = "_run_file_fields"
 
 
 # -- helpers -----------------------------------------------------------------------------
-def _read_toml(path: str, what: str) -> tuple[dict, str]:
-    """(parsed TOML, text) of a local file or fsspec URL; one-line errors."""
+def _read_toml(path, what: str) -> tuple[dict, str]:
+    """(parsed TOML, text) of a local file, an fsspec URL or a package resource; one-line errors."""
     from spark_align.store import fsspec_url
 
     try:
-        if "://" in path:
+        if not isinstance(path, str):  # a profile inside the shipped zip (importlib.resources)
+            raw = path.read_bytes()
+        elif "://" in path:
             import fsspec
 
             with fsspec.open(fsspec_url(path), "rb") as fh:
@@ -159,16 +161,28 @@ def profile_dirs() -> list[Path]:
     return dirs
 
 
+def _shipped():
+    """The profiles inside the package zip (``spark_align/conf/``), if the code runs from one."""
+    from importlib.resources import files
+
+    try:
+        conf = files("spark_align").joinpath("conf")
+        return {p.name.removesuffix(".toml"): p for p in conf.iterdir() if p.name.endswith(".toml")}
+    except (FileNotFoundError, NotADirectoryError, OSError):
+        return {}
+
+
 def known_profiles() -> list[str]:
-    names = set()
+    names = set(_shipped())
     for d in profile_dirs():
         if d.is_dir():
             names.update(p.stem for p in d.glob("*.toml"))
     return sorted(names)
 
 
-def find_profile(name_or_path: str) -> str:
-    """Path of a profile given by name (looked up in :func:`profile_dirs`) or by path."""
+def find_profile(name_or_path: str):
+    """Path of a profile given by name (looked up in :func:`profile_dirs`, then in the package zip)
+    or by path."""
     if "/" in name_or_path or name_or_path.endswith(".toml") or "://" in name_or_path:
         return name_or_path
     if not name_or_path or not name_or_path.replace("-", "").replace("_", "").isalnum():
@@ -177,6 +191,9 @@ def find_profile(name_or_path: str) -> str:
         candidate = d / f"{name_or_path}.toml"
         if candidate.is_file():
             return str(candidate)
+    shipped = _shipped().get(name_or_path)
+    if shipped is not None:
+        return shipped
     known = ", ".join(known_profiles()) or "none"
     looked = ", ".join(str(d) for d in profile_dirs())
     raise ConfigError(f"--profile {name_or_path}: no such profile (known: {known}; looked in {looked})")
@@ -184,8 +201,9 @@ def find_profile(name_or_path: str) -> str:
 
 def load_profile(name_or_path: str) -> Profile:
     """Read and check a profile; errors name the file and the key."""
-    path = find_profile(name_or_path)
-    data, _ = _read_toml(path, "profile")
+    found = find_profile(name_or_path)
+    data, _ = _read_toml(found, "profile")
+    path = found if isinstance(found, str) else f"{name_or_path} (shipped in the package)"
     where = f"profile {path}"
     for key in data:
         if key not in PROFILE_KEYS:
@@ -197,7 +215,10 @@ def load_profile(name_or_path: str) -> Profile:
     spark = data.get("spark", {})
     if not isinstance(spark, dict):
         raise ConfigError(f"{where}: spark must be a table of Spark settings, got {type(spark).__name__}")
-    name = Path(path).stem if "://" not in path else path.rsplit("/", 1)[-1].removesuffix(".toml")
+    if not isinstance(found, str):
+        name = name_or_path
+    else:
+        name = Path(path).stem if "://" not in path else path.rsplit("/", 1)[-1].removesuffix(".toml")
     return Profile(name=name, path=path, description=data.get("description", ""),
                    master=data.get("master") or None, settings=_flatten(spark, "", where))
 

@@ -98,12 +98,12 @@ def run(args: argparse.Namespace) -> int:
     from spark_align.store import RunStore
 
     config_file = profiles.apply_run_file(args)
-    cfg = config_from_args(args)
-    if args.resume and args.resume_from:
-        raise ConfigError("use either --resume or --resume-from, not both")
-    profile = profiles.load_profile(args.profile) if args.profile else None
     log = common.ProgressLog(args.log_json)
     try:
+        cfg = config_from_args(args)
+        if args.resume and args.resume_from:
+            raise ConfigError("use either --resume or --resume-from, not both")
+        profile = profiles.load_profile(args.profile) if args.profile else None
         spark = common.session(args)
         run_info = {"spark": {"master": spark.sparkContext.master, "profile": profile.to_dict() if profile else None,
                               "conf": profiles.redact(common.conf_pairs(args.conf))}}
