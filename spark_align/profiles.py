@@ -25,7 +25,8 @@ run; its keys are the ``train`` options, grouped in tables::
     [output]    run, decoding, posterior_threshold, symmetrization, log_json
     [spark]     profile, master, conf
 
-Options given on the command line override the file. The file's name, SHA-256
+Options given on the command line override the file; the file's ``master`` is
+used only when neither ``--master`` nor spark-submit names one. The file's name, SHA-256
 and text are recorded in ``run.json`` (``config_file``), so a run can be
 repeated from it. Relative paths in the file are relative to the current
 directory, as on the command line.
@@ -344,6 +345,9 @@ def apply_run_file(args: argparse.Namespace) -> dict[str, Any] | None:
     values, record = ({}, None)
     if getattr(args, "config", None):
         values, record = read_run_file(args.config, fields)
+    # The file's master is a fallback below spark-submit's --master (a run file written for a
+    # laptop must not pull a submitted job into local mode); --master on the command line wins.
+    args.fallback_master = values.pop("master", None) if getattr(args, "master", None) is None else None
     for dest, f in fields.items():
         given = getattr(args, dest, None)
         if f.kind == "append":

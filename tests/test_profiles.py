@@ -113,6 +113,9 @@ def test_settings_precedence_defaults_profile_submit_conf():
     assert "spark.master" not in settings
     assert effective_settings("local[3]", None, prof, submitted)[0] == "local[3]"  # explicit --master wins
     assert effective_settings(None, None, prof, {})[0] == "spark://from-profile:7077"
+    # A run file's master: below spark-submit's, above the profile's.
+    assert effective_settings(None, None, prof, submitted, "local[2]")[0] == "spark://from-submit:7077"
+    assert effective_settings(None, None, prof, {}, "local[2]")[0] == "local[2]"
     master, settings = effective_settings(None, None, None, {})
     assert master == "local[*]" and settings["spark.ui.enabled"] == "false"
 
@@ -144,8 +147,10 @@ def test_command_line_overrides_the_file_and_defaults_fill_the_rest(tmp_path):
     assert cfg.decoding == "posterior" and cfg.corpus.lowercase     # the file fills what is not given
     assert cfg.corpus.source_text == "a.src" and [s.n_iter for s in cfg.stages] == [2]
     assert cfg.posterior_threshold == 0.5 and cfg.corpus.max_length == 100  # built-in defaults
-    assert args.master == "local[2]"
+    assert args.master is None and args.fallback_master == "local[2]"  # below spark-submit's --master
     assert common.conf_pairs(args.conf) == {"spark.sql.shuffle.partitions": "5"}  # later --conf wins
+    args, _ = parse_train(["--config", path, "--master", "local[3]"])
+    assert args.master == "local[3]" and args.fallback_master is None
 
 
 def test_without_a_file_the_built_in_defaults_hold(tmp_path):

@@ -72,7 +72,8 @@ def session(args: argparse.Namespace):
     from spark_align.profiles import load_profile
 
     name = getattr(args, "profile", None)
-    return get_session(args.master, conf_pairs(args.conf), profile=load_profile(name) if name else None)
+    return get_session(args.master, conf_pairs(args.conf), profile=load_profile(name) if name else None,
+                       fallback_master=getattr(args, "fallback_master", None))
 
 
 def printer(line: str) -> None:

@@ -39,14 +39,17 @@ def submitted_settings() -> dict[str, str]:
 
 
 def effective_settings(master: str | None = None, conf: dict[str, str] | None = None,
-                       profile=None, submitted: dict[str, str] | None = None) -> tuple[str, dict[str, str]]:
+                       profile=None, submitted: dict[str, str] | None = None,
+                       fallback_master: str | None = None) -> tuple[str, dict[str, str]]:
     """(master, settings) from, lowest to highest precedence: :data:`DEFAULT_CONF`, the profile
     (a :class:`spark_align.profiles.Profile`), what spark-submit gave, then ``conf``.
 
-    The master is ``master`` if given, else spark-submit's, else the profile's, else ``local[*]``.
+    The master is ``master`` if given, else spark-submit's, else ``fallback_master`` (a run
+    file's), else the profile's, else ``local[*]``.
     """
     submitted = submitted or {}
-    chosen = master or submitted.get("spark.master") or (profile.master if profile else None) or "local[*]"
+    chosen = (master or submitted.get("spark.master") or fallback_master or (profile.master if profile else None)
+              or "local[*]")
     settings = dict(DEFAULT_CONF)
     if chosen.startswith("local"):
         settings["spark.ui.enabled"] = "false"
@@ -58,7 +61,7 @@ def effective_settings(master: str | None = None, conf: dict[str, str] | None = 
 
 
 def get_session(master: str | None = "local[*]", conf: dict[str, str] | None = None,
-                app_name: str = "spark_align", *, profile=None):
+                app_name: str = "spark_align", *, profile=None, fallback_master: str | None = None):
     """Get (or create) the Spark session with the project defaults, ``profile`` and ``conf``.
 
     ``master=None`` takes spark-submit's ``--master``, else the profile's, else ``local[*]``.
@@ -70,7 +73,7 @@ def get_session(master: str | None = "local[*]", conf: dict[str, str] | None = N
     os.environ.setdefault("PYSPARK_PYTHON", sys.executable)
     os.environ.setdefault("PYSPARK_DRIVER_PYTHON", sys.executable)
     submitted = submitted_settings()
-    master, settings = effective_settings(master, conf, profile, submitted)
+    master, settings = effective_settings(master, conf, profile, submitted, fallback_master)
     if "spark.app.name" in submitted:
         app_name = submitted["spark.app.name"]
     builder = SparkSession.builder.master(master).appName(app_name)

@@ -64,7 +64,8 @@ def remote(request):
             other.pipe(f"/{prefix}/{rel}", data)
 
         yield f"memory://{prefix}", put
-        other.rm(f"/{prefix}", recursive=True) if other.exists(f"/{prefix}") else None
+        if other.exists(f"/{prefix}"):
+            other.rm(f"/{prefix}", recursive=True)
         return
     client = request.getfixturevalue("s3_server")
 

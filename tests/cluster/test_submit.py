@@ -142,7 +142,8 @@ def start_submit(workspace, bare_py, package_zip, master: str, name: str, *extra
     run_dir = workspace / name
     log_path = workspace / f"{name}.submit.log"
     cmd = [os.path.join(SPARK_HOME, "bin", "spark-submit"), "--master", master, "--py-files", package_zip,
-           "--conf", "spark.log.level=WARN", str(REPO / "jobs" / "train.py"),
+           # No driver UI: a test must not compete for port 4040 with whatever else runs here.
+           "--conf", "spark.log.level=WARN", "--conf", "spark.ui.enabled=false", str(REPO / "jobs" / "train.py"),
            "--config", str(workspace / "run.toml"), "--run", f"file://{run_dir}",
            "--log-json", str(workspace / f"{name}.jsonl"), *extra]
     proc = start_group(cmd, log_path=str(log_path), env=spark_env(bare_py), cwd=str(workspace))
