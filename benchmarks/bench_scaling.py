@@ -4,8 +4,9 @@ Every configuration runs in fresh processes (a Spark session of its own, ``local
 
 1. a child generates the corpus (``spark_align.corpus.synthetic.generate``, seed 0; source and
    target columns only) into the work directory, once per (pairs, vocabulary);
-2. another child runs ``spark-align train``'s engine on it (``engine.run.train``) and prints one
-   JSON line of figures, read back here.
+2. a child claims a run directory and ingests the corpus (as ``spark-align train`` does);
+3. another child resumes it with ``engine.run.train(..., resume=True)``, so its Python workers
+   run E-steps (and the final decoding) only, and prints one JSON line of figures, read back here.
 
 Figures per configuration (iterations 2.. only: iteration 1 starts from the constant uniform
 table, which is never shipped per entry):
@@ -54,6 +55,30 @@ def _child_generate(args) -> None:
     synthetic.write_parquet(table.select(["id", "source", "target"]), args.corpus, n_files=4, overwrite=True)
 
 
+def _child_ingest(args) -> None:
+    """Claim the run directory and ingest, as ``train`` would; training then resumes in a fresh process,
+    so the Python workers' peak memory is that of the E-step, not of ingestion."""
+    import dataclasses
+
+    from spark_align.config import CorpusConfig, RunConfig, parse_stages
+    from spark_align.engine import ingest
+    from spark_align.engine.session import get_session
+    from spark_align.fingerprint import corpus_fingerprint
+    from spark_align.store import FORMAT_VERSION, RunStore
+
+    spark = get_session(f"local[{args.cores}]", {"spark.sql.shuffle.partitions": str(2 * args.cores),
+                                                 "spark.driver.memory": "6g"})
+    cfg = RunConfig(corpus=CorpusConfig(path=args.corpus), stages=parse_stages(args.stages),
+                    block_size=args.block_size, shipping=args.shipping, prune_below=args.prune_below)
+    store = RunStore(args.run)
+    fingerprint = corpus_fingerprint(spark, cfg.corpus)
+    store.write_json("run.json", {"format_version": FORMAT_VERSION, "config": cfg.to_dict(),
+                                  "corpus_fingerprint": fingerprint})
+    summary = dataclasses.asdict(ingest.ingest(spark, cfg, store))
+    store.write_json("encoded.json", {**summary, "corpus_fingerprint": fingerprint})
+    spark.stop()
+
+
 def _child_train(args) -> None:
     from spark_align.config import CorpusConfig, RunConfig, parse_stages
     from spark_align.engine.estep import MEMORY_ENV
@@ -67,7 +92,7 @@ def _child_train(args) -> None:
     cfg = RunConfig(corpus=CorpusConfig(path=args.corpus), stages=parse_stages(args.stages),
                     block_size=args.block_size, shipping=args.shipping, prune_below=args.prune_below)
     started = time.time()
-    train(spark, cfg, args.run, log=lambda line: print(line, file=sys.stderr, flush=True))
+    train(spark, cfg, args.run, resume=True, log=lambda line: print(line, file=sys.stderr, flush=True))
     total = time.time() - started
     rows = []
     for ckpt in RunStore(args.run).checkpoints():
@@ -96,10 +121,12 @@ def run_config(work: Path, pairs: int, *, vocab: int, shipping: str, block_size:
     run = Path(tempfile.mkdtemp(dir=work, prefix="run-"))
     os.rmdir(run)
     memdir = tempfile.mkdtemp(dir=work, prefix="mem-")
-    cmd = [sys.executable, __file__, "_train", "--corpus", str(corpus), "--run", str(run), "--memdir", memdir,
+    cmd = [sys.executable, __file__, "_ingest", "--corpus", str(corpus), "--run", str(run), "--memdir", memdir,
            "--shipping", shipping, "--block-size", str(block_size), "--stages", stages, "--cores", str(cores)]
     if prune_below is not None:
         cmd += ["--prune-below", str(prune_below)]
+    subprocess.run(cmd, check=True, stdout=subprocess.DEVNULL)
+    cmd[2] = "_train"
     out = subprocess.run(cmd, check=True, stdout=subprocess.PIPE, text=True).stdout
     result = json.loads(out.strip().splitlines()[-1])
     later = [r for r in result["iterations"] if not (r["stage"] == stages.split(":")[0] and r["iteration"] == 1)]
@@ -125,7 +152,7 @@ def fmt(r: dict) -> str:
 
 
 def main() -> None:
-    if len(sys.argv) > 1 and sys.argv[1] in ("_generate", "_train"):
+    if len(sys.argv) > 1 and sys.argv[1] in ("_generate", "_ingest", "_train"):
         p = argparse.ArgumentParser()
         for name in ("--corpus", "--run", "--memdir", "--shipping", "--stages"):
             p.add_argument(name)
@@ -133,7 +160,7 @@ def main() -> None:
             p.add_argument(name, type=int)
         p.add_argument("--prune-below", type=float)
         args = p.parse_args(sys.argv[2:])
-        (_child_generate if sys.argv[1] == "_generate" else _child_train)(args)
+        {"_generate": _child_generate, "_ingest": _child_ingest, "_train": _child_train}[sys.argv[1]](args)
         return
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument("--sizes", default="20000,100000,300000", help="corpus sizes in pairs")
@@ -161,7 +188,7 @@ def main() -> None:
 
     if args.memory:
         n = args.memory_pairs
-        for vocab, block in ((3000, 512), (100_000, 512), (100_000, 4096), (3000, 4096)):
+        for vocab, block in ((3000, 512), (100_000, 512), (100_000, 4096)):
             for shipping in ("broadcast", "join"):
                 record(run_config(work, n, vocab=vocab, shipping=shipping, block_size=block, stages=args.stages,
                                   cores=args.cores))
