@@ -54,6 +54,7 @@ def test_invalid_utf8_names_the_line(spark, tmp_path, capsys):
     (pa.table({"source": ["a b", None, "c"], "target": ["x", "y", "z"]}), [], ["row 1", "null in column 'source'"]),
     (pa.table({"source": pa.array([], pa.string()), "target": pa.array([], pa.string())}), [], ["empty"]),
     (pa.table({"source": ["a"], "target": ["b"]}), ["--id-column", "doc"], ["no id column 'doc'"]),
+    (pa.table({"source": ["a"], "target": ["b"], "alignment": ["0-0"]}), [], ["column 'alignment' is reserved"]),
 ])
 def test_bad_parquet_corpus(spark, tmp_path, capsys, table, args, needles):
     pq.write_table(table, tmp_path / "c.parquet")
