@@ -30,6 +30,9 @@ from spark_align.kernels import ragged
 from spark_align.store import RunStore
 
 ROW = "_row"
+# Columns the output corpus adds beside the input's: an input column may not already use these names.
+RESERVED_COLUMNS = (ROW, "alignment", "alignment_forward", "alignment_reverse", "score_forward",
+                    "score_reverse", "skip_reason")
 MONO_PARTITION_SHIFT = 33  # monotonically_increasing_id puts the partition index above bit 33
 
 BLOCK_SCHEMA = ("block_id long, rows array<long>, src_len array<int>, src_ids array<int>, "
@@ -115,8 +118,10 @@ def _check_columns(df, c) -> None:
                              f"{fields[name].simpleString()}, expected string")
     if c.id_column is not None and c.id_column not in fields:
         raise InputError(f"corpus {c.path}: no id column {c.id_column!r} (columns: {', '.join(fields)})")
-    if ROW in fields:
-        raise InputError(f"corpus {c.path}: column name {ROW!r} is reserved; rename it")
+    taken = sorted(set(fields) & set(RESERVED_COLUMNS))
+    if taken:
+        raise InputError(f"corpus {c.path}: column {taken[0]!r} is reserved for the output corpus "
+                         f"(reserved: {', '.join(RESERVED_COLUMNS)}); rename it or leave it out")
 
 
 def _check_nulls(spark, c) -> None:
