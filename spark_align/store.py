@@ -101,7 +101,7 @@ class RunStore:
         """CRC-32 (hex) of every data file under a sub-path, as :meth:`files` lists them.
 
         Sizes catch truncation; the checksum also catches bytes changed in place.
-        It costs one read of the files through fsspec (about 1 GB/s locally).
+        It costs one read of the files through fsspec (0.3 GB/s measured locally on a busy 2-core machine).
         """
         import zlib
 

@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import dataclasses
+import posixpath
 import time
 from collections.abc import Callable
 
@@ -79,8 +80,12 @@ def starting_state(store: RunStore, cfg: RunConfig, resume_from: str | None,
         problem = verify_checkpoint(store, ckpt)
         if problem:
             raise CheckpointError(f"checkpoint {ckpt.name} is damaged: {problem}")
-        for later in [c for c in ckpts if (c.stage_index, c.iteration) > (ckpt.stage_index, ckpt.iteration)]:
-            store.remove(RunStore.checkpoint_dir(later.stage_index, later.model, later.iteration))
+        later = [RunStore.checkpoint_dir(c.stage_index, c.model, c.iteration)
+                 for c in ckpts if (c.stage_index, c.iteration) > (ckpt.stage_index, ckpt.iteration)]
+        for rel in later:  # un-commit them all first: a crash in between leaves no later commit behind
+            store.remove(rel, "manifest.json")
+        for rel in later:
+            store.remove(rel)
         log(f"resuming from checkpoint {ckpt.name}; later checkpoints removed")
         return _state_of(store, ckpt)
     for ckpt in reversed(ckpts):
@@ -128,7 +133,9 @@ def train(spark, cfg: RunConfig, run_dir: str, *, resume: bool = False, resume_f
     if existing is not None:
         check_compatible(existing, cfg, fingerprint, store.url)
     else:
-        if store.exists() and store.fs.ls(store.root):
+        # A crash while claiming the directory leaves only a temporary run.json: still ours to claim.
+        if store.exists() and [p for p in store.fs.ls(store.root, detail=False)
+                               if not posixpath.basename(p.rstrip("/")).startswith("run.json.tmp-")]:
             raise RunDirError(f"{store.url} is not empty and holds no run; choose an empty or new directory")
         store.check_writable()
         store.write_json("run.json", {"format_version": FORMAT_VERSION, "config": cfg.to_dict(),

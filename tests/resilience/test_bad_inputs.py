@@ -105,6 +105,10 @@ def test_duplicate_and_null_ids_are_carried_not_merged(spark, tmp_path):
 def test_a_single_pair_trains(spark, tmp_path):
     s, t = write_text(tmp_path, ["haus"], ["house"])
     run_dir = str(tmp_path / "run")
+    # A run killed while claiming its directory leaves only a temporary run.json: the directory is still free.
+    os.makedirs(run_dir)
+    with open(os.path.join(run_dir, "run.json.tmp-0123abcd"), "w") as fh:
+        fh.write('{"config": {"corp')
     train(spark, config(CorpusConfig(source_text=s, target_text=t), "ibm1:2", directions="both"), run_dir,
           log=lambda _: None)
     out = read_output(run_dir)

@@ -122,6 +122,16 @@ def test_every_checkpoint_damaged_starts_again_from_the_beginning(spark, trained
     assert_same_as_pristine(trained, run_dir)
 
 
+def test_resume_from_a_named_checkpoint_redoes_the_later_iterations(spark, trained, tmp_path):
+    run_dir = copy_run(trained, tmp_path)
+    cfg, _ = trained
+    lines = []
+    train(spark, cfg, str(run_dir), resume_from="ibm1:1", log=lines.append)
+    assert "resuming from checkpoint ibm1:1; later checkpoints removed" in lines
+    assert [x.split("]")[0] for x in lines if x.startswith("[stage")] == ["[stage 1 ibm1 2/3", "[stage 1 ibm1 3/3"]
+    assert_same_as_pristine(trained, run_dir)
+
+
 def test_resume_from_a_damaged_checkpoint_refuses(spark, trained, tmp_path):
     cfg, _ = trained
     run_dir = copy_run(trained, tmp_path)

@@ -1,12 +1,13 @@
 """Determinism: the same configuration gives bit-identical tables, whatever the shuffle partitioning.
 
 E-step values are summed as 64-bit integers (``engine/estep.py``), so the order
-in which Spark's shuffle delivers partial sums cannot change a table bit:
-runs with 2 and 7 shuffle partitions (adaptive coalescing off, so the counts
-really differ) must be identical (two runs with the same partitioning as well: the kill and
-retry tests in ``test_kill_resume.py`` compare runs of separate processes bit for bit). Reading the corpus as seven files in many
-small input partitions changes which pairs share an encoded block (blocks are
-runs of consecutive rows of one input partition), hence the order of the
+in which Spark's shuffle delivers partial sums cannot change a table bit: runs
+with 2 and 7 shuffle partitions (adaptive coalescing off, so the counts really
+differ) must be identical. (Runs with the same partitioning are compared bit
+for bit across separate processes by the kill and retry tests in
+``test_kill_resume.py``.) Reading the corpus as seven files in many small input
+partitions changes which pairs share an encoded block (blocks are runs of
+consecutive rows of one input partition), hence the order of the
 floating-point sums inside a block: those runs must agree to 1e-9 relative.
 """
 from __future__ import annotations
