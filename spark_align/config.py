@@ -14,6 +14,7 @@ from typing import Any
 from spark_align.errors import ConfigError
 
 DIRECTIONS = ("forward", "reverse", "both")
+MAX_LENGTH_LIMIT = 1000  # a 1000 x 1000 pair is a million link cells; blocks hold block_size pairs
 INITS = ("uniform", "random")
 DECODINGS = ("viterbi", "posterior")
 SHIPPINGS = ("auto", "broadcast", "join")
@@ -47,8 +48,9 @@ class CorpusConfig:
             raise ConfigError("corpus: give either --corpus or --source-text/--target-text, not both")
         if has_text and (self.source_text is None or self.target_text is None):
             raise ConfigError("corpus: --source-text and --target-text go together")
-        if self.max_length < 1:
-            raise ConfigError(f"max_length must be at least 1, got {self.max_length}")
+        if not 1 <= self.max_length <= MAX_LENGTH_LIMIT:
+            raise ConfigError(f"max_length must be between 1 and {MAX_LENGTH_LIMIT}, got {self.max_length} "
+                              f"(each pair costs (l+1)(m+1) link cells in memory)")
         if not self.max_ratio >= 1.0:
             raise ConfigError(f"max_ratio must be at least 1, got {self.max_ratio}")
         if self.source_column == self.target_column:
