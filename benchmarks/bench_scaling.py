@@ -172,6 +172,8 @@ def main() -> None:
     parser.add_argument("--memory", action="store_true",
                         help="instead: task memory vs table size (vocabulary) and block size, both shipping paths")
     parser.add_argument("--memory-pairs", type=int, default=100_000)
+    parser.add_argument("--memory-configs", default="3000:512,100000:512,100000:4096",
+                        help="VOCAB:BLOCK_SIZE list for --memory")
     parser.add_argument("--prune", type=float, default=None, help="instead: one size with and without pruning")
     parser.add_argument("--work", default=str(HERE / "_build" / "scaling"))
     parser.add_argument("--jsonl", default=None, help="also append every result to this file")
@@ -188,7 +190,7 @@ def main() -> None:
 
     if args.memory:
         n = args.memory_pairs
-        for vocab, block in ((3000, 512), (100_000, 512), (100_000, 4096)):
+        for vocab, block in (tuple(int(x) for x in c.split(":")) for c in args.memory_configs.split(",")):
             for shipping in ("broadcast", "join"):
                 record(run_config(work, n, vocab=vocab, shipping=shipping, block_size=block, stages=args.stages,
                                   cores=args.cores))

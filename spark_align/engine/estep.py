@@ -76,12 +76,10 @@ def make_estep(model, directions: tuple[str, ...], tables_bc, dense: dict[str, d
         _maybe_fail()
         tables = tables_bc.value
         for batch in batches:
-            parts = []
             for _block_id, _rows, block in blocks_from_batch(batch):
                 t_locals = {d: tables[d].local(block.dict_keys) for d in directions}
-                parts.extend(block_rows(model, directions, block, t_locals, dense))
-            if parts:
-                yield rows_batch(parts)
+                # One output batch per block: a task's memory then follows one block, not a whole input batch.
+                yield rows_batch(block_rows(model, directions, block, t_locals, dense))
         note_task_memory("broadcast")
 
     return estep
