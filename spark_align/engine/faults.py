@@ -28,6 +28,9 @@ import threading
 import time
 
 KILL_AT_ENV = "SPARK_ALIGN_TEST_KILL_AT"
+# Optional: a file the kill message is also appended to (synced) before the kill. A kill from a task can
+# end the JVM before it forwards the worker's stderr, so tests read this file instead of stderr.
+KILL_LOG_ENV = "SPARK_ALIGN_TEST_KILL_LOG"
 TASK_PROPERTY = "spark_align.test.kill_target"  # Spark local property: "pg:PGID" or "pid:PID"
 
 
@@ -49,7 +52,14 @@ def _target() -> str:
 
 
 def _kill(target: str, why: str) -> None:
-    print(f"spark-align: test kill ({KILL_AT_ENV}): {why}", file=sys.stderr, flush=True)
+    message = f"spark-align: test kill ({KILL_AT_ENV}): {why}"
+    print(message, file=sys.stderr, flush=True)
+    log = os.environ.get(KILL_LOG_ENV)
+    if log:
+        with open(log, "a") as fh:
+            fh.write(message + "\n")
+            fh.flush()
+            os.fsync(fh.fileno())
     kind, _, num = target.partition(":")
     if kind == "pg":
         os.killpg(int(num), signal.SIGKILL)

@@ -88,9 +88,10 @@ def assert_same_results(run_dir, reference) -> None:
     assert got.equals(want), "output corpora differ"
 
 
-def assert_killed(result, point: str) -> None:
+def assert_killed(result, point: str, kill_log) -> None:
     assert result.returncode == -9, (result.returncode, result.stderr[-3000:])
-    assert f"test kill (SPARK_ALIGN_TEST_KILL_AT): {point}" in result.stderr, result.stderr[-3000:]
+    said = kill_log.read_text() if kill_log.exists() else ""
+    assert f"test kill (SPARK_ALIGN_TEST_KILL_AT): {point}" in said, (said, result.stderr[-3000:])
     assert result.strays == [], f"processes of the killed run survived: {result.strays}"
 
 
@@ -101,6 +102,7 @@ def test_killed_at_each_point_with_failing_tasks_then_resumed_equals_uninterrupt
     args = train_args(corpus_dir, run_dir) + ["--master", "local[2,4]", *FAST_CONF]
     ckpt = run_dir / "checkpoints"
     n_failed = []
+    kill_log = tmp_path / "kills.log"
 
     def run_train_step(extra, kill_at=None):
         # SPARK_ALIGN_TEST_FAIL_ESTEP_ONCE: in every E-step of every process, the first attempt of the task of
@@ -110,13 +112,14 @@ def test_killed_at_each_point_with_failing_tasks_then_resumed_equals_uninterrupt
         env = {"SPARK_ALIGN_TEST_FAIL_ESTEP_ONCE": str(markers)}
         if kill_at:
             env["SPARK_ALIGN_TEST_KILL_AT"] = kill_at
+            env["SPARK_ALIGN_TEST_KILL_LOG"] = str(kill_log)
         result = run_train(args + extra, env=env)
         n_failed.append(len(os.listdir(markers)))
         return result
 
     # 1. Inside an E-step task of ibm1 iteration 2 (the task kills the driver's process group).
     r = run_train_step([], "estep:ibm1:2")
-    assert_killed(r, "estep:ibm1:2 in task")
+    assert_killed(r, "estep:ibm1:2 in task", kill_log)
     assert manifest(run_dir, "00-ibm1", 1) is not None
     assert manifest(run_dir, "00-ibm1", 2) is None
     assert not (run_dir / "output.json").exists()
@@ -126,7 +129,7 @@ def test_killed_at_each_point_with_failing_tasks_then_resumed_equals_uninterrupt
     assert "ingesting" not in r.stdout  # the encoded corpus was committed before the first kill
     assert "resuming after checkpoint ibm1:1" in r.stdout
     assert "injected E-step failure" in r.stderr  # Spark logs the lost task it retried
-    assert_killed(r, "mstep-write:hmm:1 while files are being written")
+    assert_killed(r, "mstep-write:hmm:1 while files are being written", kill_log)
     assert (ckpt / "01-hmm" / "iter-0001" / "lex" / "_temporary").exists()
     assert manifest(run_dir, "01-hmm", 1) is None
 
@@ -134,7 +137,7 @@ def test_killed_at_each_point_with_failing_tasks_then_resumed_equals_uninterrupt
     r = run_train_step(["--resume"], "manifest:hmm:1")
     assert "note: ignoring checkpoints/01-hmm/iter-0001: no manifest.json" in r.stdout
     assert "resuming after checkpoint ibm1:2" in r.stdout
-    assert_killed(r, "manifest:hmm:1 with")
+    assert_killed(r, "manifest:hmm:1 with", kill_log)
     leftovers = glob.glob(str(ckpt / "01-hmm" / "iter-0001" / "manifest.json.tmp-*"))
     assert len(leftovers) == 1 and manifest(run_dir, "01-hmm", 1) is None
     with pytest.raises(json.JSONDecodeError):
@@ -144,14 +147,14 @@ def test_killed_at_each_point_with_failing_tasks_then_resumed_equals_uninterrupt
     r = run_train_step(["--resume"], "output-write:hmm:1")
     assert "note: ignoring checkpoints/01-hmm/iter-0001: no manifest.json" in r.stdout
     assert "resuming after checkpoint ibm1:2" in r.stdout and "[stage 2 hmm 1/1]" in r.stdout
-    assert_killed(r, "output-write:hmm:1 while files are being written")
+    assert_killed(r, "output-write:hmm:1 while files are being written", kill_log)
     assert manifest(run_dir, "01-hmm", 1) is not None
     assert (run_dir / "output" / "_temporary").exists() and not (run_dir / "output.json").exists()
 
     # 5. Halfway through output.json: the output files are all there, but nothing says they are complete.
     r = run_train_step(["--resume"], "output-commit")
     assert "resuming after checkpoint hmm:1" in r.stdout and "[stage" not in r.stdout
-    assert_killed(r, "output-commit:hmm:1 with")
+    assert_killed(r, "output-commit:hmm:1 with", kill_log)
     assert not (run_dir / "output.json").exists() and not (run_dir / "output" / "_temporary").exists()
     assert len(glob.glob(str(run_dir / "output.json.tmp-*"))) == 1
 
