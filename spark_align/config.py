@@ -142,7 +142,7 @@ class RunConfig:
     directions: str = "both"
     init: str = "uniform"
     seed: int = 0
-    block_size: int = 512
+    block_size: int = 2048
     decoding: str = "viterbi"
     posterior_threshold: float = 0.5
     symmetrization: str = "grow-diag-final-and"

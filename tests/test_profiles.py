@@ -157,7 +157,7 @@ def test_without_a_file_the_built_in_defaults_hold(tmp_path):
     args, record = parse_train(["--corpus", "x.parquet", "--run", "r"])
     assert record is None
     cfg = config_from_args(args)
-    assert cfg.block_size == 512 and cfg.directions == "both" and not cfg.corpus.lowercase
+    assert cfg.block_size == 2048 and cfg.directions == "both" and not cfg.corpus.lowercase
     assert cfg.corpus.source_column == "source" and args.master is None and args.conf == []
 
 

@@ -46,8 +46,9 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     g.add_argument("--init", choices=INITS, default="uniform",
                    help="initial translation table: uniform (default) or random (seeded by --seed)")
     g.add_argument("--seed", type=int, default=0, help="seed for --init random (default 0)")
-    g.add_argument("--block-size", type=int, default=512,
-                   help="sentence pairs per encoded block, the unit of work of an E-step (default 512)")
+    g.add_argument("--block-size", type=int, default=2048,
+                   help="sentence pairs per encoded block, the unit of work of an E-step (default 2048; larger "
+                        "blocks share more of their pair dictionaries, so fewer count rows leave each E-step)")
     g.add_argument("--decoding", choices=DECODINGS, default="viterbi",
                    help="viterbi: the single best alignment (default); posterior: every link whose posterior "
                         "is at least --posterior-threshold")

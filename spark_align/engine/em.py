@@ -58,11 +58,13 @@ def m_step(spark, stats_df, directions):
         dense_sums[d][kind][row["tgt"]] = float(from_fixed(np.int64(row["hi"]), np.int64(row["lo"])))
     lex = agg.filter(F.col("src") >= 0).withColumn(
         "cond", F.when(F.col("dir") == 0, F.col("src")).otherwise(F.col("tgt")))
-    per_cond = Window.partitionBy("dir", "cond")
-    total = from_fixed(F.sum("hi").over(per_cond).cast("double"), F.sum("lo").over(per_cond).cast("double"))
+    # Totals per conditioning word by a hash aggregate joined back (a vocabulary-sized side that adaptive
+    # execution broadcasts when small), rather than a window, which would shuffle and sort the whole table.
+    totals = lex.groupBy("dir", "cond").agg(F.sum("hi").alias("thi"), F.sum("lo").alias("tlo"))
+    total = from_fixed(F.col("thi").cast("double"), F.col("tlo").cast("double"))
     count = from_fixed(F.col("hi").cast("double"), F.col("lo").cast("double"))
-    table = lex.select("dir", "src", "tgt",
-                       F.greatest(count / total, F.lit(tables_mod.MIN_PROB)).alias("prob"))
+    table = lex.join(totals, on=["dir", "cond"]).select(
+        "dir", "src", "tgt", F.greatest(count / total, F.lit(tables_mod.MIN_PROB)).alias("prob"))
     return agg, table, dense_sums
 
 

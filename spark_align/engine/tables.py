@@ -57,9 +57,28 @@ def uniform_tables(directions: tuple[str, ...], src_vocab_size: int, tgt_vocab_s
     return {d: DirectionTable(None, None, 1.0 / size[d]) for d in directions}
 
 
+def _read_parquet_on_driver(spark, path: str):
+    """The table as Arrow: read directly through fsspec when the driver can, else through Spark.
+
+    Collecting through Spark costs seconds per million entries (rows travel JVM -> Arrow); a direct
+    pyarrow read of the same files is an order of magnitude faster. Spark remains the fallback for
+    storage only Spark is configured for (no fsspec backend installed on the driver).
+    """
+    import fsspec
+    import pyarrow.parquet as pq
+
+    from spark_align.store import fsspec_url
+
+    try:
+        fs, root = fsspec.core.url_to_fs(fsspec_url(path))
+        return pq.read_table(root, filesystem=fs, columns=["dir", "src", "tgt", "prob"])
+    except (ImportError, OSError, ValueError):
+        return spark.read.parquet(path).toArrow()
+
+
 def read_tables(spark, path: str, directions: tuple[str, ...]) -> dict[str, DirectionTable]:
     """Load a checkpoint table for broadcasting (see the module docstring for the cost)."""
-    table = spark.read.parquet(path).toArrow()
+    table = _read_parquet_on_driver(spark, path)
     dir_col = table.column("dir").to_numpy()
     keys_all = ragged.make_key(table.column("src").to_numpy(), table.column("tgt").to_numpy())
     probs_all = table.column("prob").to_numpy()
