@@ -18,7 +18,7 @@ from spark_align.config import RunConfig
 from spark_align.engine import faults
 from spark_align.engine import shipping
 from spark_align.engine import tables as tables_mod
-from spark_align.engine.estep import DENSE, SCALAR, STATS_SCHEMA, from_fixed, make_estep
+from spark_align.engine.estep import DENSE, STATS_SCHEMA, from_fixed, make_estep
 from spark_align.errors import NumericalError
 from spark_align.store import FORMAT_VERSION, RunStore
 
@@ -45,7 +45,6 @@ def dense_from_json(obj: dict) -> dict[str, dict]:
 
 def m_step(spark, stats_df, directions):
     """Sum the E-step rows exactly; returns (normalised table DataFrame, dense/scalar sums per direction)."""
-    from pyspark.sql import Window
     from pyspark.sql import functions as F
 
     agg = stats_df.groupBy("dir", "src", "tgt").agg(F.sum("hi").alias("hi"), F.sum("lo").alias("lo"))

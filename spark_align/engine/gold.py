@@ -36,7 +36,7 @@ import pyarrow as pa
 from spark_align import evaluate as ev
 from spark_align.config import CorpusConfig, RunConfig
 from spark_align.engine.ingest import BLOCK_SCHEMA, MONO_PARTITION_SHIFT, ROW, blocks_from_batch, block_id_of
-from spark_align.engine.tables import DIRS, DirectionTable
+from spark_align.engine.tables import DirectionTable, tables_from_arrow
 from spark_align.errors import ConfigError, InputError
 from spark_align.kernels import ragged
 from spark_align.store import RunStore
@@ -213,15 +213,7 @@ class GoldMonitor:
         """The slice of a checkpoint table the gold pairs need, per direction."""
         directions = self.cfg.direction_list
         table = self.spark.read.parquet(table_path).join(self.keys_df, on=["src", "tgt"]).toArrow()
-        dir_col = table.column("dir").to_numpy()
-        keys_all = ragged.make_key(table.column("src").to_numpy(), table.column("tgt").to_numpy())
-        probs_all = table.column("prob").to_numpy()
-        out = {}
-        for d in directions:
-            sel = dir_col == DIRS.index(d)
-            order = np.argsort(keys_all[sel], kind="stable")
-            out[d] = DirectionTable(keys_all[sel][order], probs_all[sel][order])
-        return out
+        return tables_from_arrow(table, directions)
 
     def measure(self, model, table_path: str, dense: dict) -> dict:
         """Precision, recall, F1, AER (and counts) of each output column after an iteration."""

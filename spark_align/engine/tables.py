@@ -78,7 +78,11 @@ def _read_parquet_on_driver(spark, path: str):
 
 def read_tables(spark, path: str, directions: tuple[str, ...]) -> dict[str, DirectionTable]:
     """Load a checkpoint table for broadcasting (see the module docstring for the cost)."""
-    table = _read_parquet_on_driver(spark, path)
+    return tables_from_arrow(_read_parquet_on_driver(spark, path), directions)
+
+
+def tables_from_arrow(table, directions: tuple[str, ...]) -> dict[str, DirectionTable]:
+    """Arrow rows (dir, src, tgt, prob) -> one key-sorted :class:`DirectionTable` per direction."""
     dir_col = table.column("dir").to_numpy()
     keys_all = ragged.make_key(table.column("src").to_numpy(), table.column("tgt").to_numpy())
     probs_all = table.column("prob").to_numpy()
