@@ -10,6 +10,8 @@ from __future__ import annotations
 import os
 import sys
 
+LOCAL_DRIVER_MEMORY = "4g"  # a maximum heap, not a reservation; override with --conf spark.driver.memory=...
+
 DEFAULT_CONF = {
     "spark.sql.execution.arrow.pyspark.enabled": "true",
     # Encoded blocks are a few MB each: bound Arrow batches by bytes, not only rows.
@@ -53,6 +55,9 @@ def effective_settings(master: str | None = None, conf: dict[str, str] | None = 
     settings = dict(DEFAULT_CONF)
     if chosen.startswith("local"):
         settings["spark.ui.enabled"] = "false"
+        # Local mode runs tasks in the driver JVM, whose heap also holds broadcast tables and the
+        # aggregated counts: Spark's 1g default runs out at a few hundred thousand pairs.
+        settings["spark.driver.memory"] = LOCAL_DRIVER_MEMORY
     if profile is not None:
         settings.update(profile.settings)
     settings.update({k: v for k, v in submitted.items() if k != "spark.master"})
