@@ -1,7 +1,7 @@
 """Symmetrization heuristics and posterior combination.
 
 The heuristics are checked three ways: hand-worked examples (reasoning in the
-comments), a literal line-by-line transcription of the published pseudocode
+comments), a literal line-by-line rendering of the published pseudocode
 (full grid scans, as recalled from Koehn's *Statistical Machine Translation*,
 2010, §4.5; from memory) on many seeded random cases, and the batch functions
 against the one-pair functions. The comparison with NLTK lives in
@@ -27,7 +27,7 @@ NEIGHBOURS = ((-1, 0), (0, -1), (1, 0), (0, 1), (-1, -1), (-1, 1), (1, -1), (1, 
 
 
 # ---------------------------------------------------------------------------
-# A slow, literal transcription of the published pseudocode
+# A slow, literal rendering of the published pseudocode
 # ---------------------------------------------------------------------------
 
 def literal_pseudocode(forward, reverse, n_src, n_tgt, method):
