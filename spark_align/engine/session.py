@@ -17,6 +17,9 @@ DEFAULT_CONF = {
     # Encoded blocks are a few MB each: bound Arrow batches by bytes, not only rows.
     "spark.sql.execution.arrow.maxBytesPerBatch": str(64 * 1024 * 1024),
     "spark.sql.execution.arrow.maxRecordsPerBatch": "4096",
+    # One encoded block row holds thousands of pairs (MBs of lists): Spark's default of 4096 rows per
+    # Parquet column batch held whole row groups of blocks in the heap and ran out at 300k pairs.
+    "spark.sql.parquet.columnarReaderBatchSize": "64",
     "spark.python.worker.reuse": "true",
     "spark.sql.shuffle.partitions": "8",
     "spark.sql.adaptive.enabled": "true",
