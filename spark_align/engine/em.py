@@ -158,10 +158,11 @@ class Trainer:
             with faults.kill_during_write("mstep-write", stage.model, state.iteration + 1,
                                           self.store.spark_path(rel, "lex")):
                 table.write.mode("overwrite").parquet(self.store.spark_path(rel, "lex"))
-            agg.unpersist()
+            # Blocking: the next iteration's counts and table must not meet this one's in the heap.
+            agg.unpersist(blocking=True)
         finally:
             if tables_bc is not None:
-                tables_bc.unpersist()
+                tables_bc.destroy()
         new_dense, metrics = {}, {}
         for d in self.directions:
             n = model.dense_size()
