@@ -48,7 +48,11 @@ def m_step(spark, stats_df, directions):
     from pyspark.sql import functions as F
 
     agg = stats_df.groupBy("dir", "src", "tgt").agg(F.sum("hi").alias("hi"), F.sum("lo").alias("lo"))
-    agg = agg.persist()
+    # Kept for two actions (the small statistics, then the table write) without running the E-step
+    # twice; on local disk, not in the heap, which the next shuffle and broadcast need.
+    from pyspark import StorageLevel
+
+    agg = agg.persist(StorageLevel.DISK_ONLY)
     small = agg.filter(F.col("src") < 0).collect()
     dense_sums: dict[str, dict] = {d: {"dense": {}, "scalar": {}} for d in directions}
     for row in small:
