@@ -19,11 +19,15 @@ table, which is never shipped per entry):
   directions and all tasks (``metrics[dir].kernel_seconds`` of the manifest). It counts
   everything else: Arrow (de)serialisation, the table lookup, emitting and shuffling counts,
   the M-step, the checkpoint write, scheduling, and idle cores;
+  It is split into: ``E-step tasks`` (task wall time minus kernel time: reading blocks, the
+  table lookup, folding and serialising counts; the lookup alone is also shown, and
+  ``lookup_vs_kernel`` in the JSON), ``reducers`` (summing, normalising and writing
+  the table) and ``rest`` (Spark scheduling and shuffle, the driver, and idle cores);
 * ``exponent``: the slope of log(iteration seconds) against log(pairs) over the sizes run;
 * ``task_rss_mb``: peak resident memory of the E-step's Python workers (``ru_maxrss`` noted by
   each E-step task when ``SPARK_ALIGN_BENCH_TASK_MEMORY_DIR`` is set; max over tasks);
-* ``driver_rss_mb``: peak resident memory of the driver's Python process (it starts the job
-  and, on the broadcast path, reads the table). In local mode the driver JVM is also the
+* ``driver_rss_mb``: peak resident memory of the driver's Python process (it plans the jobs and
+  collects small sums; no path reads the table on the driver). In local mode the driver JVM is also the
   executor, so its heap is not a driver-only figure and is not reported.
 
 Run: ``python3 benchmarks/bench_scaling.py --sizes 20000,100000,300000`` (issue-2 figures),
@@ -100,6 +104,10 @@ def _child_train(args) -> None:
         dirs = m["directions"]
         rows.append({"stage": m["stage"], "iteration": m["iteration"], "seconds": m["seconds"],
                      "kernel_seconds": sum(m["metrics"][d]["kernel_seconds"] for d in dirs),
+                     # the E-step tasks' wall time counts both directions once (it is folded per direction)
+                     "estep_task_seconds": m["metrics"][dirs[0]].get("estep_task_seconds", 0.0),
+                     "lookup_seconds": m["metrics"][dirs[0]].get("lookup_seconds", 0.0),
+                     "reduce_task_seconds": m["metrics"][dirs[0]].get("reduce_task_seconds", 0.0),
                      "links": sum(m["metrics"][d]["links"] for d in dirs),
                      "shipping": m["metrics"][dirs[0]].get("shipping"),
                      "table_entries": m["metrics"][dirs[0]].get("table_entries"),
@@ -136,9 +144,17 @@ def run_config(work: Path, pairs: int, *, vocab: int, shipping: str, block_size:
         secs = statistics.median(r["seconds"] for r in later)
         kernel = statistics.median(r["kernel_seconds"] for r in later)
         links = statistics.median(r["links"] for r in later)
+        task = statistics.median(r["estep_task_seconds"] for r in later)
+        reduce = statistics.median(r["reduce_task_seconds"] for r in later)
+        lookup = statistics.median(r["lookup_seconds"] for r in later)
+        core_s = secs * cores
         result.update(iter_s=secs, kernel_s=kernel, links=links, mlinks_core=links / kernel / 1e6,
-                      outside=1.0 - kernel / (secs * cores), shipping=later[-1]["shipping"],
-                      table_entries=later[-1]["table_entries"])
+                      outside=1.0 - kernel / core_s, shipping=later[-1]["shipping"],
+                      table_entries=later[-1]["table_entries"],
+                      # where the core time outside the kernels went (shares of cores x iteration seconds)
+                      estep_other=(task - kernel) / core_s if task else float("nan"),
+                      lookup_share=lookup / core_s, lookup_vs_kernel=lookup / kernel,
+                      reduce_share=reduce / core_s, rest_share=1.0 - max(task, kernel) / core_s - reduce / core_s)
     subprocess.run(["rm", "-rf", str(run), memdir])
     return result
 
@@ -147,7 +163,10 @@ def fmt(r: dict) -> str:
     return (f"pairs {r['pairs']:>8d} vocab {r['vocab']:>6d} block {r['block_size']:>5d} {r.get('shipping', '?'):9s} "
             f"table {r.get('table_entries') or 0:>9d}  iter {r.get('iter_s', float('nan')):7.2f} s  "
             f"kernel {r.get('mlinks_core', float('nan')):6.1f} M links/s/core  "
-            f"outside {100 * r.get('outside', float('nan')):5.1f}%  task RSS {r['task_rss_mb']:6.0f} MB  "
+            f"outside {100 * r.get('outside', float('nan')):5.1f}% (E-step tasks {100 * r.get('estep_other', float('nan')):4.1f}%"
+            f" of which lookup {100 * r.get('lookup_share', float('nan')):4.1f}%"
+            f" reducers {100 * r.get('reduce_share', float('nan')):4.1f}% rest {100 * r.get('rest_share', float('nan')):4.1f}%)"
+            f"  task RSS {r['task_rss_mb']:6.0f} MB  "
             f"driver RSS {r['driver_rss_mb']:5.0f} MB  (load {r['load_avg']:.1f}, total {r['total_s']:.0f} s)")
 
 

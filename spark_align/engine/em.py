@@ -1,10 +1,11 @@
-"""The EM driver loop: E-step job, exact reduction, M-step, checkpoint, progress line.
+"""The EM driver loop: E-step job, exact reduction and M-step, checkpoint, progress line.
 
-Per iteration: one pass over the encoded blocks (both directions at once),
-one shuffle of (dir, src, tgt) partial counts, one window to normalise per
-conditioning word, one Parquet write of the new table, and a JSON manifest
-written last (the commit). The driver holds the whole table only to broadcast
-it (see ``engine.tables``); it never turns it into Python objects.
+Per iteration, one Spark job: E-step tasks over the encoded blocks (both
+directions at once) fold their counts per task; one shuffle of those folded
+counts, keyed by conditioning word, reaches reducer tasks that sum them
+exactly, normalise and write the new table (``engine.mstep``); a JSON
+manifest is written last (the commit). The driver plans the job and collects
+small sums (dense statistics, log-likelihood); it never holds the table.
 """
 from __future__ import annotations
 
@@ -18,9 +19,10 @@ from spark_align.config import RunConfig
 from spark_align.engine import faults
 from spark_align.engine import shipping
 from spark_align.engine import tables as tables_mod
-from spark_align.engine.estep import DENSE, STATS_SCHEMA, from_fixed, make_estep
+from spark_align.engine import mstep
+from spark_align.engine.estep import HI_SCALE, LO_SCALE, make_estep
 from spark_align.errors import NumericalError
-from spark_align.store import FORMAT_VERSION, RunStore
+from spark_align.store import FORMAT_VERSION, RunStore, fsspec_url
 
 LEX_SCHEMA_COLUMNS = ("dir", "src", "tgt", "prob")
 
@@ -41,52 +43,6 @@ def dense_to_json(dense: dict[str, dict]) -> dict:
 
 def dense_from_json(obj: dict) -> dict[str, dict]:
     return {d: {k: np.asarray(v, dtype=np.float64) for k, v in params.items()} for d, params in obj.items()}
-
-
-def m_step(spark, stats_df, directions):
-    """Sum the E-step rows exactly; returns (normalised table DataFrame, dense/scalar sums per direction)."""
-    from pyspark.sql import functions as F
-
-    agg = stats_df.groupBy("dir", "src", "tgt").agg(F.sum("hi").alias("hi"), F.sum("lo").alias("lo"))
-    # Kept for two actions (the small statistics, then the table write) without running the E-step
-    # twice; on local disk, not in the heap, which the next shuffle and broadcast need.
-    from pyspark import StorageLevel
-
-    agg = agg.persist(StorageLevel.DISK_ONLY)
-    small = agg.filter(F.col("src") < 0).collect()
-    dense_sums: dict[str, dict] = {d: {"dense": {}, "scalar": {}} for d in directions}
-    for row in small:
-        d = tables_mod.DIRS[row["dir"]]
-        kind = "dense" if row["src"] == DENSE else "scalar"
-        dense_sums[d][kind][row["tgt"]] = float(from_fixed(np.int64(row["hi"]), np.int64(row["lo"])))
-    lex = agg.filter(F.col("src") >= 0).withColumn(
-        "cond", F.when(F.col("dir") == 0, F.col("src")).otherwise(F.col("tgt")))
-    # Totals per conditioning word by a hash aggregate joined back (a vocabulary-sized side that adaptive
-    # execution broadcasts when small), rather than a window, which would shuffle and sort the whole table.
-    totals = lex.groupBy("dir", "cond").agg(F.sum("hi").alias("thi"), F.sum("lo").alias("tlo"))
-    total = from_fixed(F.col("thi").cast("double"), F.col("tlo").cast("double"))
-    count = from_fixed(F.col("hi").cast("double"), F.col("lo").cast("double"))
-    table = lex.join(totals, on=["dir", "cond"]).select(
-        "dir", "src", "tgt", F.greatest(count / total, F.lit(tables_mod.MIN_PROB)).alias("prob"))
-    return agg, table, dense_sums
-
-
-def prune_table(table, threshold: float, directions) -> tuple:
-    """Drop entries with prob < ``threshold`` (lookups then give them ``MIN_PROB``).
-
-    Returns (kept table DataFrame, per direction {threshold, removed, kept, removed_mass}), the
-    removed mass being the sum of the dropped probabilities over all conditioning words.
-    """
-    from pyspark.sql import functions as F
-
-    below = F.col("prob") < F.lit(threshold)
-    rows = table.groupBy("dir").agg(F.count("*").alias("n"), F.sum(below.cast("long")).alias("removed"),
-                                    F.sum(F.when(below, F.col("prob")).otherwise(0.0)).alias("mass")).collect()
-    found = {tables_mod.DIRS[r["dir"]]: r for r in rows}
-    report = {d: {"threshold": threshold, "removed": int(found[d]["removed"]) if d in found else 0,
-                  "kept": int(found[d]["n"] - found[d]["removed"]) if d in found else 0,
-                  "removed_mass": float(found[d]["mass"]) if d in found else 0.0} for d in directions}
-    return table.filter(~below), report
 
 
 def init_table(spark, blocks_df, directions, init: str, seed: int, src_vocab: int, tgt_vocab: int):
@@ -128,45 +84,58 @@ class Trainer:
         self.directions = cfg.direction_list
         self.n_words = {"forward": encoded["n_tgt_tokens"], "reverse": encoded["n_src_tokens"]}
         self._last_per_word: dict[str, float] = {}
+        self._units: list[tuple[str, int]] | None = None
 
     def blocks(self):
         return self.spark.read.parquet(self.store.spark_path("encoded", "blocks"))
 
+    def block_units(self) -> list[tuple[str, int]]:
+        """(file, row group) of every row group of the encoded blocks, listed once per run."""
+        if self._units is None:
+            self._units = mstep.block_units(self.store.fs, self.store.fsspec_path("encoded", "blocks"))
+        return self._units
+
+    def n_reducers(self) -> int:
+        return max(1, int(self.spark.conf.get("spark.sql.shuffle.partitions")))
+
     # -- one iteration -------------------------------------------------------------------
     def iterate(self, model, state: TrainState) -> tuple[str, dict, dict]:
-        """One EM iteration from ``state``; returns (table path, new dense, metrics)."""
+        """One EM iteration from ``state``; returns (table path, new dense, metrics).
+
+        E-step tasks fold their counts and ship them by reducer bucket; reducers normalise and
+        write the new table themselves (``engine.mstep``). The driver only plans and collects sums.
+        """
         sc = self.spark.sparkContext
         src_v, tgt_v = self.encoded["src_vocab_size"], self.encoded["tgt_vocab_size"]
         n_entries = None if state.table_path is None else shipping.table_entries(self.spark, state.table_path)
         path = shipping.choose_shipping(self.cfg.shipping, n_entries, self.cfg.table_budget_mb)
-        tables_bc = None
-        try:
-            if path == "join":
-                stats = shipping.join_stats(self.spark, self.store, self.blocks(), state.table_path, model,
-                                            self.directions, state.dense)
-            else:
-                if state.table_path is None:
-                    tables = tables_mod.uniform_tables(self.directions, src_v, tgt_v)
-                else:
-                    tables = tables_mod.read_tables(self.spark, state.table_path, self.directions)
-                tables_bc = sc.broadcast(tables)
-                estep = make_estep(model, self.directions, tables_bc, state.dense)
-                stats = self.blocks().mapInArrow(estep, STATS_SCHEMA)
-            stage = self.cfg.stages[state.stage_index]
-            with faults.arm_task_kill(self.spark, "estep", stage.model, state.iteration + 1):
-                agg, table, sums = m_step(self.spark, stats, self.directions)
-            rel = RunStore.checkpoint_dir(state.stage_index, stage.model, state.iteration + 1)
-            pruned = {}
-            if self.cfg.prune_below is not None:
-                table, pruned = prune_table(table, self.cfg.prune_below, self.directions)
-            with faults.kill_during_write("mstep-write", stage.model, state.iteration + 1,
-                                          self.store.spark_path(rel, "lex")):
-                table.write.mode("overwrite").parquet(self.store.spark_path(rel, "lex"))
-            # Blocking: the next iteration's counts and table must not meet this one's in the heap.
-            agg.unpersist(blocking=True)
-        finally:
-            if tables_bc is not None:
-                tables_bc.destroy()
+        n_parts = self.n_reducers()
+        stage = self.cfg.stages[state.stage_index]
+        rel = RunStore.checkpoint_dir(state.stage_index, stage.model, state.iteration + 1)
+        if path == "join":
+            stats = shipping.join_stats(self.spark, self.store, self.blocks(), state.table_path, model,
+                                        self.directions, state.dense)
+            pairs = (stats.mapInArrow(mstep.make_payload_folder(n_parts), mstep.PAYLOAD_DDL)
+                     .rdd.map(lambda row: (row[0], row[1])))
+        else:
+            source = tables_mod.table_source(state.table_path, self.directions, src_v, tgt_v)
+            units = self.block_units()
+            n_tasks = max(1, min(len(units), 4 * sc.defaultParallelism))
+            estep = make_estep(model, self.directions, source, state.dense,
+                               blocks_url=fsspec_url(self.store.spark_path("encoded", "blocks")), n_buckets=n_parts)
+            pairs = sc.parallelize(units, n_tasks).mapPartitions(estep)
+        self.store.remove(rel, "lex")  # what an interrupted attempt at this iteration left
+        started = time.perf_counter()
+        with faults.arm_task_kill(self.spark, "estep", stage.model, state.iteration + 1), \
+                faults.kill_during_write("mstep-write", stage.model, state.iteration + 1,
+                                         self.store.spark_path(rel, "lex")):
+            summaries = mstep.reduce_and_write(
+                sc, pairs, n_parts, fsspec_url(self.store.spark_path(rel, "lex")), hi_scale=HI_SCALE,
+                lo_scale=LO_SCALE, min_prob=tables_mod.MIN_PROB, prune_below=self.cfg.prune_below)
+        job_seconds = time.perf_counter() - started
+        self.store.remove(rel, "lex", "_temporary")
+        sums = mstep.combine(summaries, self.directions, tables_mod.DIRS, hi_scale=HI_SCALE, lo_scale=LO_SCALE,
+                             prune_below=self.cfg.prune_below)
         new_dense, metrics = {}, {}
         for d in self.directions:
             n = model.dense_size()
@@ -179,9 +148,13 @@ class Trainer:
                                      f"log-likelihood is {loglik}")
             metrics[d] = {"loglik": loglik, "loglik_per_word": per_word, "perplexity": float(np.exp(-per_word)),
                           "kernel_seconds": sums[d]["scalar"].get(1, 0.0), "links": sums[d]["scalar"].get(2, 0.0),
-                          "shipping": path, "table_entries": n_entries}
-            if d in pruned:
-                metrics[d]["pruned"] = pruned[d]
+                          "estep_task_seconds": sums[d]["scalar"].get(3, 0.0),
+                          "lookup_seconds": sums[d]["scalar"].get(4, 0.0),
+                          "reduce_task_seconds": float(sum(s["seconds"] for s in summaries)),
+                          "job_seconds": job_seconds, "reducers": n_parts,
+                          "shipping": path, "table_entries": n_entries, "new_table_entries": sums[d]["entries"]}
+            if sums[d]["pruned"] is not None:
+                metrics[d]["pruned"] = sums[d]["pruned"]
             if self.cfg.prune_below is not None and d in self._last_per_word:
                 # With pruning, this includes what the previous pruning cost (without it EM never decreases).
                 metrics[d]["loglik_per_word_change"] = per_word - self._last_per_word[d]

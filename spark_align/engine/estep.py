@@ -7,7 +7,8 @@ direction and emits rows ``(dir, src, tgt, hi, lo)``:
 * ``src >= 0``: expected count of the pair (src, tgt) in direction ``dir``;
 * ``src == -1``: entry ``tgt`` of the model's dense statistics vector;
 * ``src == -2``: scalars (``tgt == 0``: log-likelihood; ``tgt == 1``: seconds spent in the
-  model kernel, for the share-outside-the-kernel figure; ``tgt == 2``: links processed).
+  model kernel, for the share-outside-the-kernel figure; ``tgt == 2``: links processed;
+  whole-table path only, per task: ``tgt == 3`` task seconds, ``tgt == 4`` table-lookup seconds).
 
 Counts leave the task as 64-bit fixed point in two parts (``v = hi / 2^20 +
 lo / 2^50``, error below 1e-15 per value) and are summed as integers by
@@ -69,20 +70,55 @@ def _maybe_fail() -> None:
         raise RuntimeError(f"injected E-step failure ({FAIL_ONCE_ENV}) for partition {ctx.partitionId()}")
 
 
-def make_estep(model, directions: tuple[str, ...], tables_bc, dense: dict[str, dict]):
-    """The ``mapInArrow`` function of one E-step (closes over arrays and small objects only)."""
+def make_estep(model, directions: tuple[str, ...], tables_src, dense: dict[str, dict], *, blocks_url: str,
+               n_buckets: int):
+    """The E-step task of the whole-table path: (file, row group) units -> (bucket, payload) records.
 
-    def estep(batches):
+    Each task reads its row groups of encoded blocks straight from Parquet (pyarrow through fsspec,
+    a few block rows per batch), looks every block's dictionary up in the whole table
+    (``tables_src.value``, read once per Python worker), and folds all its blocks' counts into one
+    sum per distinct (dir, src, tgt) before emitting them (see ``engine.mstep``).
+    """
+
+    def estep(units):
+        import fsspec
+
+        from spark_align.engine import mstep
+        from spark_align.engine.mstep import fold_rows
+        from spark_align.kernels.counts import CountBuffer
+
         _maybe_fail()
-        tables = tables_bc.value
-        for batch in batches:
-            for _block_id, _rows, block in blocks_from_batch(batch):
-                t_locals = {d: tables[d].local(block.dict_keys) for d in directions}
-                # One output batch per block: a task's memory then follows one block, not a whole input batch.
-                yield rows_batch(block_rows(model, directions, block, t_locals, dense))
+        started = time.perf_counter()
+        tables = tables_src.value
+        fs, _root = fsspec.core.url_to_fs(blocks_url)
+        buffer = CountBuffer()
+        lookup_seconds = 0.0
+        for path, row_group in units:
+            for batch in mstep.read_unit(fs, path, row_group):
+                for _block_id, _rows, block in blocks_from_batch(batch):
+                    looked_up = time.perf_counter()
+                    t_locals = {d: tables[d].local(block.dict_keys) for d in directions}
+                    lookup_seconds += time.perf_counter() - looked_up
+                    fold_parts(buffer, block_rows(model, directions, block, t_locals, dense))
         note_task_memory("broadcast")
+        # Scalars 3 and 4, the same under every direction: the task's wall time (reading, table lookups,
+        # kernels, folding) and the time its table lookups took (both directions).
+        hi, lo = to_fixed(np.array([time.perf_counter() - started, lookup_seconds]))
+        for direction in directions:
+            fold_rows(buffer, np.full(2, DIRS.index(direction), np.int8), np.full(2, SCALAR, np.int32),
+                      np.array([3, 4], np.int32), hi, lo)
+        yield from mstep.payloads(buffer, n_buckets)
 
     return estep
+
+
+def fold_parts(buffer, parts: list[tuple[np.ndarray, ...]]) -> None:
+    """Add one block's :func:`block_rows` parts to a task's count buffer (as fixed point)."""
+    from spark_align.engine.mstep import fold_rows
+
+    d_col, s_col, t_col, v_col = (np.concatenate(x) for x in zip(*parts))
+    hi, lo = to_fixed(v_col)
+    fold_rows(buffer, d_col, s_col, t_col, hi, lo)
 
 
 def block_rows(model, directions: tuple[str, ...], block, t_locals: dict[str, np.ndarray],

@@ -269,6 +269,9 @@ def blocks_from_batch(batch: pa.RecordBatch) -> list[tuple[int, np.ndarray, ragg
     return out
 
 
+BLOCK_ROW_GROUP_BYTES = 8 * 2 ** 20
+
+
 def ingest(spark, cfg: RunConfig, store: RunStore) -> IngestSummary:
     """Snapshot, tokens, vocabularies and encoded blocks; returns what it counted."""
     from pyspark.sql import functions as F
@@ -292,7 +295,10 @@ def ingest(spark, cfg: RunConfig, store: RunStore) -> IngestSummary:
         src_index, n_src_vocab = load_vocab_index(spark, store.spark_path("vocab", "source"))
         tgt_index, n_tgt_vocab = load_vocab_index(spark, store.spark_path("vocab", "target"))
         blocks = encode_blocks(spark, tokens, src_index, tgt_index, cfg.block_size)
-        blocks.write.mode("overwrite").parquet(store.spark_path("encoded", "blocks"))
+        # Small row groups: an E-step task reads whole row groups, so they bound its memory and are
+        # the units of work that spread the E-step over tasks.
+        (blocks.write.mode("overwrite").option("parquet.block.size", BLOCK_ROW_GROUP_BYTES)
+         .parquet(store.spark_path("encoded", "blocks")))
     finally:
         tokens.unpersist()
     n_blocks = spark.read.parquet(store.spark_path("encoded", "blocks")).count()

@@ -176,9 +176,8 @@ def train(spark, cfg: RunConfig, run_dir: str, *, resume: bool = False, resume_f
     last = cfg.stages[state.stage_index]
     model = last.build()
     src_v, tgt_v = encoded["src_vocab_size"], encoded["tgt_vocab_size"]
-    tabs = (tables.read_tables(spark, state.table_path, cfg.direction_list) if state.table_path
-            else tables.uniform_tables(cfg.direction_list, src_v, tgt_v))
-    tables_bc = spark.sparkContext.broadcast(tabs)
+    # Each Python worker reads the final table itself: the driver never holds it.
+    tables_bc = tables.table_source(state.table_path, cfg.direction_list, src_v, tgt_v)
     try:
         decoder = output.make_decoder(model, cfg.direction_list, tables_bc, state.dense, method=cfg.decoding,
                                       threshold=cfg.posterior_threshold, symmetrization=cfg.symmetrization)

@@ -5,9 +5,9 @@ same float64 vector ``t_local`` (one probability per entry of the block's pair
 dictionary, ``MIN_PROB`` where the table has no entry), so both give the same
 counts, bit for bit.
 
-``broadcast`` (``engine.tables``): the driver reads the table and broadcasts it
-whole. Per executor Python worker: 16 bytes x all table entries, whatever the
-partition holds; the driver holds one copy too.
+``broadcast`` (``engine.tables``): every executor Python worker reads the whole
+table from the checkpoint. Per executor Python worker: 16 bytes x all table
+entries, whatever the partition holds; the driver holds none of it.
 
 ``join`` (this module; distributed EM after Wolfe, Haghighi & Klein 2008):
 each block receives only the entries of its own dictionary, through Spark's
@@ -63,7 +63,16 @@ def choose_shipping(mode: str, n_entries: int | None, budget_mb: float) -> str:
 
 def table_entries(spark, table_path: str) -> int:
     """Rows of a checkpoint table (from Parquet footers: no data is read)."""
-    return spark.read.parquet(table_path).count()
+    import fsspec
+    import pyarrow.dataset as ds
+
+    from spark_align.store import fsspec_url
+
+    try:
+        fs, root = fsspec.core.url_to_fs(fsspec_url(table_path))
+        return ds.dataset(root, filesystem=fs, format="parquet").count_rows()
+    except (ImportError, OSError, ValueError):  # storage only Spark is configured for
+        return spark.read.parquet(table_path).count()
 
 
 def block_dict_frame(spark, store, blocks_df):

@@ -4,16 +4,17 @@ The table is stored long-form in each checkpoint: rows (dir, src, tgt, prob)
 with dir 0 = forward t(tgt | src) and dir 1 = reverse t(src | tgt); only pairs
 that co-occur in some sentence pair (plus NULL pairs) exist.
 
-Whole-table shipping (this module): the driver reads the checkpoint's table as
-Arrow (through Spark's reader, so any storage URL works), turns each direction
-into two numpy arrays sorted by key (int64 key + float64 probability = 16
-bytes per entry), and broadcasts them. Every executor Python worker holds the
-whole table once per iteration: memory per executor = 16 bytes x table entries
-x Python workers on that executor, and the driver holds one copy while
-broadcasting. Each block then looks up only its own dictionary
+Whole-table shipping (this module, ``--shipping broadcast``): every executor
+Python worker reads the checkpoint's table files itself (pyarrow through
+fsspec, :class:`TableSource`) once per iteration and turns each direction into
+two numpy arrays sorted by key (int64 key + float64 probability = 16 bytes per
+entry). Memory per executor = 16 bytes x table entries x Python workers on
+that executor (plus the Arrow read while it is converted); the driver holds
+nothing table-sized. Each block then looks up only its own dictionary
 (``searchsorted``, n_dict log(table size) per block per iteration) and runs
 its E-step on that local slice, so the per-link lookup in the kernel is a
-gather from a small array.
+gather from a small array. Executors therefore need the fsspec backend of the
+run directory's storage (s3fs for ``s3a://`` run directories, for example).
 
 Per-block shipping (``engine.shipping``): when the table is larger than a
 budget (``--shipping auto``, 16 bytes x entries > ``--table-budget-mb``) or
@@ -21,8 +22,8 @@ when forced (``--shipping join``), each block instead receives only its own
 dictionary's entries through a Spark join, and nothing table-sized is held by
 the driver or by any task. Both paths give every block the same local vector
 (``MIN_PROB`` for keys absent from the table, e.g. pruned ones), so results are
-bit-identical. The decoding pass of the output (``engine.output``) still uses
-this module's broadcast.
+bit-identical. The decoding pass of the output (``engine.output``) reads the
+table through :class:`TableSource` too.
 """
 from __future__ import annotations
 
@@ -55,6 +56,61 @@ def uniform_tables(directions: tuple[str, ...], src_vocab_size: int, tgt_vocab_s
     """Uniform initial tables: t(f | e) = 1 / |V_f| (the NULL id is not counted)."""
     size = {"forward": tgt_vocab_size, "reverse": src_vocab_size}
     return {d: DirectionTable(None, None, 1.0 / size[d]) for d in directions}
+
+
+_WORKER_CACHE: dict = {}
+
+
+@dataclass(frozen=True)
+class TableSource:
+    """Stands in for a broadcast of the whole table, without the driver ever holding it.
+
+    ``.value`` (what tasks call, as on a broadcast variable) reads the table where it is used:
+    each Python worker reads the checkpoint's Parquet files once (pyarrow through fsspec) and keeps
+    only the table it read last. ``token`` is unique per :func:`table_source` call, so a table
+    directory written again (``--resume-from``) is never served from an older read.
+    """
+
+    url: str | None                 # fsspec URL of the table directory; None = uniform initial table
+    directions: tuple[str, ...]
+    vocab_sizes: tuple[int, int]    # (source, target): the uniform table's constants
+    token: str
+
+    @property
+    def value(self) -> dict[str, DirectionTable]:
+        key = (self.url, self.directions, self.vocab_sizes, self.token)
+        if key not in _WORKER_CACHE:
+            _WORKER_CACHE.clear()  # free the previous table before reading the next
+            if self.url is None:
+                _WORKER_CACHE[key] = uniform_tables(self.directions, *self.vocab_sizes)
+            else:
+                _WORKER_CACHE[key] = tables_from_arrow(read_table_arrow(self.url), self.directions)
+        return _WORKER_CACHE[key]
+
+    def unpersist(self) -> None:
+        """Nothing to free on the driver (kept so callers can treat it like a broadcast)."""
+
+    destroy = unpersist
+
+
+def table_source(table_path: str | None, directions: tuple[str, ...], src_vocab_size: int,
+                 tgt_vocab_size: int) -> TableSource:
+    """A :class:`TableSource` for a checkpoint table (a Spark path/URL), or the uniform table if None."""
+    import uuid
+
+    from spark_align.store import fsspec_url
+
+    url = None if table_path is None else fsspec_url(table_path)
+    return TableSource(url, tuple(directions), (src_vocab_size, tgt_vocab_size), uuid.uuid4().hex)
+
+
+def read_table_arrow(url: str):
+    """A table directory (fsspec URL) as Arrow, skipping ``_``/``.`` entries (``_temporary``)."""
+    import fsspec
+    import pyarrow.parquet as pq
+
+    fs, root = fsspec.core.url_to_fs(url)
+    return pq.read_table(root, filesystem=fs, columns=["dir", "src", "tgt", "prob"])
 
 
 def _read_parquet_on_driver(spark, path: str):

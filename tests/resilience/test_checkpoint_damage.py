@@ -45,8 +45,10 @@ def iter_dir(run_dir, iteration):
 
 
 def table_file(run_dir, iteration) -> str:
-    (path,) = glob.glob(str(iter_dir(run_dir, iteration) / "lex" / "part-*.parquet"))
-    return path
+    """The checkpoint's largest table file (one per reducer; some reducers may write no rows)."""
+    paths = glob.glob(str(iter_dir(run_dir, iteration) / "lex" / "part-*.parquet"))
+    assert paths
+    return max(paths, key=os.path.getsize)
 
 
 def resume(spark, trained, run_dir, **kw) -> list[str]:

@@ -1,0 +1,197 @@
+"""From E-step counts to the committed table: exact, in numpy, with Spark only moving bytes.
+
+Per iteration:
+
+1. Each E-step task (either shipping path) folds the rows of all its blocks
+   into one sum per distinct (dir, src, tgt) (:class:`~spark_align.kernels.counts.CountBuffer`,
+   integer fixed point) and emits one record per reducer bucket:
+   ``(bucket, Arrow IPC bytes)``. A task's output is then at most the number of
+   distinct pairs it saw, not one row per block entry.
+2. Spark's shuffle moves those records as opaque bytes (``RDD.partitionBy``
+   with the bucket as partition), so every row of one conditioning word (and
+   every entry of one dense statistic) meets in one reducer task.
+3. Reducer task ``p`` sums its rows exactly, normalises per conditioning word
+   (``kernels.counts.normalise``), optionally prunes, and writes
+   ``lex/part-PPPPP.parquet`` itself with pyarrow through fsspec: first under
+   ``lex/_temporary/`` and then moved into place, so a retried task overwrites
+   a whole file with the same bytes. It returns only small sums to the driver:
+   dense statistics, scalars, entry counts and what pruning removed.
+
+Nothing table-sized passes through the JVM's SQL engine or the driver. The
+number of reducers is ``spark.sql.shuffle.partitions``; results do not depend
+on it (integer sums), only the number of files does.
+"""
+from __future__ import annotations
+
+import posixpath
+import time
+import uuid
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from spark_align.kernels import counts
+from spark_align.store import BUCKET_PROTOCOLS
+
+TABLE_SCHEMA = pa.schema([("dir", pa.int8()), ("src", pa.int32()), ("tgt", pa.int32()), ("prob", pa.float64())])
+_PAYLOAD_SCHEMA = pa.schema([("key", pa.int64()), ("hi", pa.int64()), ("lo", pa.int64())])
+DENSE, SCALAR = -1, -2
+
+
+def fold_rows(buffer: counts.CountBuffer, dirs, src, tgt, hi, lo) -> None:
+    """Add E-step rows (``engine.estep`` layout, already fixed point) to a task's buffer."""
+    if len(src) and (int(src.max()) >= counts.MAX_ID or int(tgt.max()) >= counts.MAX_ID):
+        raise ValueError(f"word ids must stay below {counts.MAX_ID}")
+    buffer.add(counts.row_keys(dirs, src, tgt), np.asarray(hi, np.int64), np.asarray(lo, np.int64))
+
+
+def payloads(buffer: counts.CountBuffer, n_buckets: int):
+    """(bucket, bytes) records of a task's folded rows: one per non-empty bucket."""
+    keys, hi, lo = buffer.result()
+    if len(keys) == 0:
+        return
+    bucket = counts.buckets_of(keys, n_buckets)
+    order = np.argsort(bucket, kind="stable")
+    bucket_sorted = bucket[order]
+    cuts = np.flatnonzero(np.diff(bucket_sorted)) + 1
+    for part in np.split(order, cuts):
+        yield int(bucket[part[0]]), encode(keys[part], hi[part], lo[part])
+
+
+def encode(keys: np.ndarray, hi: np.ndarray, lo: np.ndarray) -> bytes:
+    batch = pa.RecordBatch.from_arrays([pa.array(keys), pa.array(hi), pa.array(lo)], schema=_PAYLOAD_SCHEMA)
+    sink = pa.BufferOutputStream()
+    with pa.ipc.new_stream(sink, _PAYLOAD_SCHEMA) as writer:
+        writer.write_batch(batch)
+    return sink.getvalue().to_pybytes()
+
+
+def decode(data) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    table = pa.ipc.open_stream(pa.py_buffer(bytes(data) if isinstance(data, bytearray) else data)).read_all()
+    return tuple(table.column(i).to_numpy() for i in range(3))
+
+
+def make_payload_folder(n_buckets: int):
+    """``mapInArrow`` function: ``engine.estep.STATS_SCHEMA`` rows -> (bucket, payload), folded per task."""
+
+    def fold(batches):
+        buffer = counts.CountBuffer()
+        for batch in batches:
+            cols = [batch.column(i).to_numpy() for i in range(5)]
+            fold_rows(buffer, *cols)
+        for bucket, data in payloads(buffer, n_buckets):
+            yield pa.RecordBatch.from_arrays([pa.array([bucket], pa.int32()), pa.array([data], pa.binary())],
+                                             names=["bucket", "payload"])
+
+    return fold
+
+
+PAYLOAD_DDL = "bucket int, payload binary"
+
+
+def part_name(index: int) -> str:
+    return f"part-{index:05d}.parquet"
+
+
+def make_reducer(lex_url: str, *, hi_scale: float, lo_scale: float, min_prob: float,
+                 prune_below: float | None):
+    """The reducer: (partition index, (bucket, payload) records) -> one small summary dict.
+
+    ``lex_url``: fsspec URL of the table directory being written.
+    """
+
+    def reduce(index, records):
+        import fsspec
+
+        started = time.perf_counter()
+        buffer = counts.CountBuffer()
+        for _bucket, data in records:
+            buffer.add(*decode(data))
+        keys, hi, lo = buffer.result()
+        dirs, src, tgt = counts.split_keys(keys)
+        summary = {"part": index, "dense": {}, "scalar": {}, "entries": {}, "pruned": {}}
+        for kind, code in (("dense", DENSE), ("scalar", SCALAR)):
+            for k in np.flatnonzero(src == code):
+                summary[kind][(int(dirs[k]), int(tgt[k]))] = (int(hi[k]), int(lo[k]))
+        t_dir, t_src, t_tgt, prob = counts.normalise(keys, hi, lo, hi_scale=hi_scale, lo_scale=lo_scale,
+                                                     min_prob=min_prob)
+        if prune_below is not None:
+            below = prob < prune_below
+            for d in np.unique(t_dir):
+                sel = t_dir == d
+                summary["pruned"][int(d)] = (int(np.count_nonzero(below & sel)), float(prob[below & sel].sum()))
+            keep = ~below
+            t_dir, t_src, t_tgt, prob = t_dir[keep], t_src[keep], t_tgt[keep], prob[keep]
+        for d in np.unique(t_dir):
+            summary["entries"][int(d)] = int(np.count_nonzero(t_dir == d))
+        table = pa.Table.from_arrays([pa.array(t_dir), pa.array(t_src), pa.array(t_tgt), pa.array(prob)],
+                                     schema=TABLE_SCHEMA)
+        fs, root = fsspec.core.url_to_fs(lex_url)
+        protocols = fs.protocol if isinstance(fs.protocol, tuple) else (fs.protocol,)
+        if not set(protocols) & BUCKET_PROTOCOLS:  # object stores need no directories
+            fs.makedirs(posixpath.join(root, "_temporary"), exist_ok=True)
+        tmp = posixpath.join(root, "_temporary", f"{part_name(index)}.{uuid.uuid4().hex}")
+        with fs.open(tmp, "wb") as fh:
+            pq.write_table(table, fh)
+        fs.mv(tmp, posixpath.join(root, part_name(index)))
+        summary["seconds"] = time.perf_counter() - started
+        yield summary
+
+    return reduce
+
+
+def combine(summaries: list[dict], directions: tuple[str, ...], all_dirs: tuple[str, ...], *,
+            hi_scale: float, lo_scale: float, prune_below: float | None) -> dict:
+    """The reducers' summaries as per-direction sums: dense/scalar values, entries, pruning report."""
+    ints: dict[tuple[str, int, int], list[int]] = {}
+    for s in summaries:
+        for kind in ("dense", "scalar"):
+            for (d, idx), (h, lo) in s[kind].items():
+                acc = ints.setdefault((kind, d, idx), [0, 0])
+                acc[0] += h
+                acc[1] += lo
+    out = {d: {"dense": {}, "scalar": {}, "entries": 0, "pruned": None} for d in directions}
+    for (kind, d, idx), (h, lo) in ints.items():
+        out[all_dirs[d]][kind][idx] = float(counts.from_fixed(np.array([h], np.int64), np.array([lo], np.int64),
+                                                              hi_scale, lo_scale)[0])
+    for s in sorted(summaries, key=lambda s: s["part"]):
+        for d, n in s["entries"].items():
+            out[all_dirs[d]]["entries"] += n
+    if prune_below is not None:
+        for d in directions:
+            removed, mass = 0, 0.0
+            for s in sorted(summaries, key=lambda s: s["part"]):
+                r, m = s["pruned"].get(all_dirs.index(d), (0, 0.0))
+                removed += r
+                mass += m
+            out[d]["pruned"] = {"threshold": prune_below, "removed": removed, "kept": out[d]["entries"],
+                                "removed_mass": mass}
+    return out
+
+
+def reduce_and_write(sc, pairs, n_parts: int, lex_url: str, **kwargs) -> list[dict]:
+    """Shuffle (bucket, payload) records to ``n_parts`` reducers, write the table; returns summaries."""
+    return (pairs.partitionBy(n_parts, lambda bucket: bucket)
+            .mapPartitionsWithIndex(make_reducer(lex_url, **kwargs)).collect())
+
+
+# -- reading encoded blocks straight from Parquet in the E-step tasks ----------------------------
+def block_units(fs, root: str) -> list[tuple[str, int]]:
+    """(file path, row group) of every row group of the encoded blocks (footers only are read)."""
+    units = []
+    root = fs._strip_protocol(root)
+    for path in sorted(fs.find(root)):
+        name = posixpath.relpath(path, root)
+        if any(seg.startswith(("_", ".")) for seg in name.split("/")) or not name.endswith(".parquet"):
+            continue
+        with fs.open(path, "rb") as fh:
+            n = pq.ParquetFile(fh).metadata.num_row_groups
+        units.extend((path, rg) for rg in range(n))
+    return units
+
+
+def read_unit(fs, path: str, row_group: int, batch_rows: int = 4):
+    """Record batches of a few block rows of one row group (memory: one row group at most)."""
+    with fs.open(path, "rb") as fh:
+        yield from pq.ParquetFile(fh).iter_batches(batch_size=batch_rows, row_groups=[row_group])

@@ -1,0 +1,120 @@
+"""Exact reduction of E-step counts and the M-step normalisation, on numpy arrays.
+
+E-step rows are ``(dir, src, tgt, hi, lo)``: a count split into 64-bit fixed
+point (see ``engine.estep``), with ``src >= 0`` for lexical counts, ``src == -1``
+for entry ``tgt`` of a model's dense statistics and ``src == -2`` for scalars.
+Sums are integer sums, so they do not depend on the order rows arrive in.
+
+Rows are identified by one int64 key ``dir << 62 | (src + 2) << 32 | tgt`` that
+sorts as (dir, src, tgt); ids must stay below 2^30 (a billion words).
+
+Functions here take and return arrays only: no Spark, no I/O.
+"""
+from __future__ import annotations
+
+import numpy as np
+
+MAX_ID = 2 ** 30 - 2  # ids (and dense indexes) must stay below this
+FIELDS = ("dir", "src", "tgt", "hi", "lo")
+_LOW32 = np.int64(0xFFFFFFFF)
+_GOLDEN = np.uint64(0x9E3779B97F4A7C15)
+
+
+def row_keys(dirs: np.ndarray, src: np.ndarray, tgt: np.ndarray) -> np.ndarray:
+    """One sortable int64 per row: order (dir, src, tgt)."""
+    return ((dirs.astype(np.int64) << 62) | ((src.astype(np.int64) + 2) << 32)
+            | tgt.astype(np.int64))
+
+
+def split_keys(keys: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Inverse of :func:`row_keys`: (dir int8, src int32, tgt int32)."""
+    return ((keys >> 62).astype(np.int8), (((keys >> 32) & np.int64(2 ** 30 - 1)) - 2).astype(np.int32),
+            (keys & _LOW32).astype(np.int32))
+
+
+def reduce_sorted(keys: np.ndarray, hi: np.ndarray, lo: np.ndarray):
+    """Sum ``hi`` and ``lo`` per distinct key; returns (unique keys ascending, hi sums, lo sums)."""
+    if len(keys) == 0:
+        return keys.astype(np.int64), hi.astype(np.int64), lo.astype(np.int64)
+    order = np.argsort(keys, kind="stable")
+    k = keys[order]
+    starts = np.flatnonzero(np.concatenate([[True], k[1:] != k[:-1]]))
+    return k[starts], np.add.reduceat(hi[order], starts), np.add.reduceat(lo[order], starts)
+
+
+class CountBuffer:
+    """Accumulates (key, hi, lo) rows and folds duplicates when it grows (memory ~ distinct keys).
+
+    ``compact_rows``: fold once this many rows are buffered beyond the last fold's result.
+    """
+
+    def __init__(self, compact_rows: int = 4_000_000) -> None:
+        self.compact_rows = compact_rows
+        self._parts: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []
+        self._pending = 0
+        self._folded = 0
+
+    def add(self, keys: np.ndarray, hi: np.ndarray, lo: np.ndarray) -> None:
+        if len(keys) == 0:
+            return
+        self._parts.append((keys, hi, lo))
+        self._pending += len(keys)
+        if self._pending > max(self.compact_rows, self._folded):
+            self._fold()
+
+    def _fold(self) -> None:
+        keys, hi, lo = (np.concatenate(x) for x in zip(*self._parts))
+        folded = reduce_sorted(keys, hi, lo)
+        self._parts = [folded]
+        self._folded = len(folded[0])
+        self._pending = 0
+
+    def result(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """(unique keys ascending, hi sums, lo sums)."""
+        if not self._parts:
+            empty = np.zeros(0, np.int64)
+            return empty, empty, empty
+        if len(self._parts) > 1 or self._pending:
+            self._fold()
+        return self._parts[0]
+
+
+def buckets_of(keys: np.ndarray, n_buckets: int) -> np.ndarray:
+    """Reducer bucket of each row: every lexical row with the same (dir, conditioning word), and every
+    dense entry with the same (dir, index), lands in the same bucket; scalars go to bucket 0.
+
+    The conditioning word is ``src`` for direction 0 (forward, t(tgt | src)) and ``tgt`` for direction 1.
+    """
+    dirs, src, tgt = split_keys(keys)
+    cond = np.where(src < 0, tgt, np.where(dirs == 0, src, tgt)).astype(np.uint64)
+    cond = np.where(src == -2, np.uint64(0), cond)
+    mixed = (cond * _GOLDEN + dirs.astype(np.uint64)) >> np.uint64(32)
+    return (mixed % np.uint64(n_buckets)).astype(np.int64)
+
+
+def from_fixed(hi: np.ndarray, lo: np.ndarray, hi_scale: float, lo_scale: float) -> np.ndarray:
+    return hi.astype(np.float64) * (1.0 / hi_scale) + lo.astype(np.float64) * (1.0 / (hi_scale * lo_scale))
+
+
+def normalise(keys: np.ndarray, hi: np.ndarray, lo: np.ndarray, *, hi_scale: float, lo_scale: float,
+              min_prob: float):
+    """M-step for the lexical rows of reduced counts (each conditioning word's rows all present).
+
+    Returns (dir, src, tgt, prob) sorted by (dir, src, tgt): prob = count / total of its conditioning
+    word, both read from integer sums, floored at ``min_prob``.
+    """
+    dirs, src, tgt = split_keys(keys)
+    lex = src >= 0
+    dirs, src, tgt, hi, lo = dirs[lex], src[lex], tgt[lex], hi[lex], lo[lex]
+    cond = np.where(dirs == 0, src, tgt).astype(np.int64)
+    group = (dirs.astype(np.int64) << 32) | cond
+    uniq, inverse = np.unique(group, return_inverse=True)
+    order = np.argsort(inverse, kind="stable")
+    starts = np.flatnonzero(np.concatenate([[True], inverse[order][1:] != inverse[order][:-1]])) \
+        if len(order) else np.zeros(0, np.int64)
+    t_hi = np.add.reduceat(hi[order], starts) if len(order) else hi
+    t_lo = np.add.reduceat(lo[order], starts) if len(order) else lo
+    assert len(t_hi) == len(uniq)
+    total = from_fixed(t_hi, t_lo, hi_scale, lo_scale)[inverse]
+    count = from_fixed(hi, lo, hi_scale, lo_scale)
+    return dirs, src, tgt, np.maximum(count / total, min_prob)

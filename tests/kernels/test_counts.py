@@ -1,0 +1,104 @@
+"""The exact count reduction and the M-step normalisation (kernels.counts), without Spark."""
+import numpy as np
+import pytest
+
+from spark_align.engine import estep, mstep
+from spark_align.kernels import counts
+
+HI, LO = estep.HI_SCALE, estep.LO_SCALE
+
+
+def _rows(rng, n, n_src=50, n_tgt=60):
+    dirs = rng.integers(0, 2, n).astype(np.int8)
+    src = rng.integers(-2, n_src, n).astype(np.int32)
+    tgt = rng.integers(0, n_tgt, n).astype(np.int32)
+    values = rng.random(n) * rng.choice([1e-6, 1.0, 300.0], n)
+    return dirs, src, tgt, values
+
+
+def test_keys_round_trip_and_sort_as_dir_src_tgt():
+    rng = np.random.default_rng(0)
+    dirs, src, tgt, _ = _rows(rng, 5000)
+    src[:3] = counts.MAX_ID - 1
+    tgt[:3] = counts.MAX_ID - 1
+    keys = counts.row_keys(dirs, src, tgt)
+    back = counts.split_keys(keys)
+    for a, b in zip(back, (dirs, src, tgt)):
+        np.testing.assert_array_equal(a, b)
+    order = np.argsort(keys, kind="stable")
+    np.testing.assert_array_equal(order, np.lexsort((tgt, src, dirs)))
+
+
+def test_buffer_folding_equals_one_exact_integer_sum_whatever_the_order():
+    """Folding in pieces (forced by a tiny compaction size) gives the integer sums of a plain dict."""
+    rng = np.random.default_rng(1)
+    dirs, src, tgt, values = _rows(rng, 20000)
+    hi, lo = estep.to_fixed(values)
+    expected: dict[tuple, list[int]] = {}
+    for row in zip(dirs.tolist(), src.tolist(), tgt.tolist(), hi.tolist(), lo.tolist()):
+        acc = expected.setdefault(row[:3], [0, 0])
+        acc[0] += row[3]
+        acc[1] += row[4]
+    for perm_seed in (2, 3):
+        perm = np.random.default_rng(perm_seed).permutation(len(dirs))
+        buf = counts.CountBuffer(compact_rows=777)
+        for chunk in np.array_split(perm, 41):
+            mstep.fold_rows(buf, dirs[chunk], src[chunk], tgt[chunk], hi[chunk], lo[chunk])
+        keys, h, lo_sum = buf.result()
+        d, s, t = counts.split_keys(keys)
+        got = {(int(a), int(b), int(c)): [int(x), int(y)] for a, b, c, x, y in zip(d, s, t, h, lo_sum)}
+        assert got == expected
+        assert np.all(np.diff(keys) > 0)
+
+
+def test_payloads_partition_rows_by_conditioning_word_and_round_trip():
+    rng = np.random.default_rng(4)
+    dirs, src, tgt, values = _rows(rng, 8000)
+    hi, lo = estep.to_fixed(values)
+    buf = counts.CountBuffer()
+    mstep.fold_rows(buf, dirs, src, tgt, hi, lo)
+    keys, h, lo_sum = buf.result()
+    seen_cond: dict[tuple[int, int], int] = {}
+    parts = []
+    for bucket, data in mstep.payloads(buf, 5):
+        k, a, b = mstep.decode(bytearray(data))  # Spark hands binary values back as bytearray
+        parts.append((k, a, b))
+        d, s, t = counts.split_keys(k)
+        for di, si, ti in zip(d.tolist(), s.tolist(), t.tolist()):
+            cond = (di, si if (si >= 0 and di == 0) else ti) if si != -2 else (di, -2)
+            assert seen_cond.setdefault(cond, bucket) == bucket, "a conditioning word split over buckets"
+    k, a, b = (np.concatenate(x) for x in zip(*parts))
+    order = np.argsort(k)
+    np.testing.assert_array_equal(k[order], keys)
+    np.testing.assert_array_equal(a[order], h)
+    np.testing.assert_array_equal(b[order], lo_sum)
+
+
+def test_normalise_gives_conditional_probabilities_per_direction():
+    # forward t(tgt | src): src 1 co-occurs with tgt 1 (count 3) and tgt 2 (count 1);
+    # reverse t(src | tgt): tgt 1 with src 0 (NULL, count 1) and src 1 (count 1).
+    dirs = np.array([0, 0, 1, 1, 0, 1], np.int8)
+    src = np.array([1, 1, 0, 1, -1, -2], np.int32)
+    tgt = np.array([1, 2, 1, 1, 4, 0], np.int32)
+    hi, lo = estep.to_fixed(np.array([3.0, 1.0, 1.0, 1.0, 9.0, -5.0]))
+    keys, h, lo_sum = counts.reduce_sorted(counts.row_keys(dirs, src, tgt), hi, lo)
+    d, s, t, p = counts.normalise(keys, h, lo_sum, hi_scale=HI, lo_scale=LO, min_prob=1e-12)
+    got = {(int(a), int(b), int(c)): float(x) for a, b, c, x in zip(d, s, t, p)}
+    assert got == {(0, 1, 1): 0.75, (0, 1, 2): 0.25, (1, 0, 1): 0.5, (1, 1, 1): 0.5}
+
+
+def test_normalise_floors_tiny_probabilities():
+    dirs = np.zeros(2, np.int8)
+    src = np.ones(2, np.int32)
+    tgt = np.array([1, 2], np.int32)
+    hi, lo = estep.to_fixed(np.array([1.0, 1e-16]))
+    keys, h, lo_sum = counts.reduce_sorted(counts.row_keys(dirs, src, tgt), hi, lo)
+    _, _, _, p = counts.normalise(keys, h, lo_sum, hi_scale=HI, lo_scale=LO, min_prob=1e-12)
+    assert p[1] == 1e-12 and p[0] == pytest.approx(1.0)
+
+
+def test_ids_beyond_the_key_range_are_refused():
+    buf = counts.CountBuffer()
+    with pytest.raises(ValueError, match="word ids must stay below"):
+        mstep.fold_rows(buf, np.zeros(1, np.int8), np.array([counts.MAX_ID], np.int32), np.zeros(1, np.int32),
+                        np.zeros(1, np.int64), np.zeros(1, np.int64))
