@@ -84,53 +84,45 @@ def make_estep(model, directions: tuple[str, ...], tables_src, dense: dict[str, 
         import fsspec
 
         from spark_align.engine import mstep
-        from spark_align.engine.mstep import fold_rows
-        from spark_align.kernels.counts import CountBuffer
 
         _maybe_fail()
         started = time.perf_counter()
         tables = tables_src.value
         fs, _root = fsspec.core.url_to_fs(blocks_url)
-        buffer = CountBuffer()
+        task = mstep.TaskCounts(tables)
         lookup_seconds = 0.0
         for path, row_group in units:
             for batch in mstep.read_unit(fs, path, row_group):
                 for _block_id, _rows, block in blocks_from_batch(batch):
                     looked_up = time.perf_counter()
-                    t_locals = {d: tables[d].local(block.dict_keys) for d in directions}
+                    found = {d: tables[d].positions(block.dict_keys) for d in directions}
+                    t_locals = {d: tables[d].probs_at(found[d], len(block.dict_keys)) for d in directions}
                     lookup_seconds += time.perf_counter() - looked_up
-                    fold_parts(buffer, block_rows(model, directions, block, t_locals, dense))
+                    for result in block_results(model, directions, block, t_locals, dense):
+                        task.add(block.dict_keys, found[DIRS[result[0]]], *result)
         note_task_memory("broadcast")
         # Scalars 3 and 4, the same under every direction: the task's wall time (reading, table lookups,
         # kernels, folding) and the time its table lookups took (both directions).
-        hi, lo = to_fixed(np.array([time.perf_counter() - started, lookup_seconds]))
+        values = np.array([time.perf_counter() - started, lookup_seconds])
         for direction in directions:
-            fold_rows(buffer, np.full(2, DIRS.index(direction), np.int8), np.full(2, SCALAR, np.int32),
-                      np.array([3, 4], np.int32), hi, lo)
-        yield from mstep.payloads(buffer, n_buckets)
+            task.add_rows(DIRS.index(direction), np.full(2, SCALAR, np.int32), np.array([3, 4], np.int32), values)
+        yield from task.payloads(n_buckets)
 
     return estep
 
 
-def fold_parts(buffer, parts: list[tuple[np.ndarray, ...]]) -> None:
-    """Add one block's :func:`block_rows` parts to a task's count buffer (as fixed point)."""
-    from spark_align.engine.mstep import fold_rows
-
-    d_col, s_col, t_col, v_col = (np.concatenate(x) for x in zip(*parts))
-    hi, lo = to_fixed(v_col)
-    fold_rows(buffer, d_col, s_col, t_col, hi, lo)
-
-
-def block_rows(model, directions: tuple[str, ...], block, t_locals: dict[str, np.ndarray],
-               dense: dict[str, dict]) -> list[tuple[np.ndarray, ...]]:
+def block_results(model, directions: tuple[str, ...], block, t_locals: dict[str, np.ndarray],
+                  dense: dict[str, dict]) -> list[tuple]:
     """E-step of one block given its local probabilities (one float64 per ``dict_keys`` entry per direction).
 
-    Returns (dir, src, tgt, value) array tuples, one per direction (see the module docstring).
+    Returns one ``(direction index, emitted, counts, (src, tgt, values))`` per direction: ``counts``
+    per dictionary entry, of which those where ``emitted`` is true are lexical counts (entries the
+    direction generates: not the NULL target of the forward, not the NULL source of the reverse),
+    and the last tuple the dense-statistics and scalar rows (see the module docstring).
     """
     src, tgt = ragged.split_key(block.dict_keys)
-    parts = []
+    out = []
     for direction in directions:
-        d = DIRS.index(direction)
         view = block.view(direction)
         started = time.perf_counter()
         counts, stats, loglik = model.e_step(view, t_locals[direction], dense[direction])
@@ -139,13 +131,22 @@ def block_rows(model, directions: tuple[str, ...], block, t_locals: dict[str, np
         emitted = (tgt != 0) if direction == "forward" else (src != 0)
         # Dense statistics are mostly zero per block (big alignment tables); zeros sum to nothing.
         stat_index = np.flatnonzero(stats).astype(np.int32)
-        values = np.concatenate([counts[emitted], stats[stat_index], [loglik, kernel_seconds, n_links]])
-        parts.append((
-            np.full(len(values), d, np.int8),
-            np.concatenate([src[emitted], np.full(len(stat_index), DENSE, np.int32),
-                            np.full(3, SCALAR, np.int32)]).astype(np.int32),
-            np.concatenate([tgt[emitted], stat_index, np.arange(3, dtype=np.int32)]).astype(np.int32),
-            values))
+        other = (np.concatenate([np.full(len(stat_index), DENSE, np.int32), np.full(3, SCALAR, np.int32)]),
+                 np.concatenate([stat_index, np.arange(3, dtype=np.int32)]),
+                 np.concatenate([stats[stat_index], [loglik, kernel_seconds, n_links]]))
+        out.append((DIRS.index(direction), emitted, counts, other))
+    return out
+
+
+def block_rows(model, directions: tuple[str, ...], block, t_locals: dict[str, np.ndarray],
+               dense: dict[str, dict]) -> list[tuple[np.ndarray, ...]]:
+    """:func:`block_results` as (dir, src, tgt, value) array tuples, one per direction."""
+    src, tgt = ragged.split_key(block.dict_keys)
+    parts = []
+    for d, emitted, counts, (o_src, o_tgt, o_val) in block_results(model, directions, block, t_locals, dense):
+        values = np.concatenate([counts[emitted], o_val])
+        parts.append((np.full(len(values), d, np.int8), np.concatenate([src[emitted], o_src]).astype(np.int32),
+                      np.concatenate([tgt[emitted], o_tgt]).astype(np.int32), values))
     return parts
 
 

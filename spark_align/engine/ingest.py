@@ -269,7 +269,7 @@ def blocks_from_batch(batch: pa.RecordBatch) -> list[tuple[int, np.ndarray, ragg
     return out
 
 
-BLOCK_ROW_GROUP_BYTES = 8 * 2 ** 20
+PAIRS_PER_ROW_GROUP = 8192  # encoded blocks per Parquet row group = this // block size (at least 1)
 
 
 def ingest(spark, cfg: RunConfig, store: RunStore) -> IngestSummary:
@@ -296,8 +296,10 @@ def ingest(spark, cfg: RunConfig, store: RunStore) -> IngestSummary:
         tgt_index, n_tgt_vocab = load_vocab_index(spark, store.spark_path("vocab", "target"))
         blocks = encode_blocks(spark, tokens, src_index, tgt_index, cfg.block_size)
         # Small row groups: an E-step task reads whole row groups, so they bound its memory and are
-        # the units of work that spread the E-step over tasks.
-        (blocks.write.mode("overwrite").option("parquet.block.size", BLOCK_ROW_GROUP_BYTES)
+        # the units of work that spread the E-step over tasks (blocks are MBs each: the byte limit
+        # alone is only checked every 100 rows).
+        (blocks.write.mode("overwrite")
+         .option("parquet.block.row.count.limit", max(1, PAIRS_PER_ROW_GROUP // cfg.block_size))
          .parquet(store.spark_path("encoded", "blocks")))
     finally:
         tokens.unpersist()

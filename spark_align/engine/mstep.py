@@ -48,15 +48,89 @@ def fold_rows(buffer: counts.CountBuffer, dirs, src, tgt, hi, lo) -> None:
 
 def payloads(buffer: counts.CountBuffer, n_buckets: int):
     """(bucket, bytes) records of a task's folded rows: one per non-empty bucket."""
-    keys, hi, lo = buffer.result()
+    for bucket, part in _split_arrays(*buffer.result(), n_buckets):
+        yield bucket, encode(*part)
+
+
+class TaskCounts:
+    """One E-step task's counts, folded exactly as they arrive.
+
+    Lexical counts of keys the whole table holds are added into integer accumulators aligned with
+    the table (positions come from the lookup the E-step does anyway), so folding costs one
+    scattered add per dictionary entry and no sort; everything else (the constant first-iteration
+    table, keys absent from the table, dense statistics, scalars) goes through a
+    :class:`~spark_align.kernels.counts.CountBuffer`. Memory: 17 bytes per table entry per direction
+    that has a table, on top of the table itself.
+    """
+
+    def __init__(self, tables: dict) -> None:
+        self.tables = tables
+        self.buffer = counts.CountBuffer()
+        self.acc: dict[int, tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]] = {}
+
+    def add(self, dict_keys: np.ndarray, found, d: int, emitted: np.ndarray, values: np.ndarray, other) -> None:
+        """One block's result for direction ``d`` (``engine.estep.block_results``); ``found`` = the
+        table's ``positions`` of ``dict_keys`` (None: constant table)."""
+        from spark_align.engine.estep import to_fixed
+
+        hi, lo = to_fixed(values[emitted])
+        keys = dict_keys[emitted]
+        if found is not None:
+            pos, hit = found[0][emitted], found[1][emitted]
+            acc = self._acc(d)
+            where = pos[hit]
+            acc[0][where] += hi[hit]   # dictionary keys are unique: no index repeats within a block
+            acc[1][where] += lo[hit]
+            acc[2][where] = True
+            keys, hi, lo = keys[~hit], hi[~hit], lo[~hit]
+        if len(keys):
+            src, tgt = keys >> 32, keys & np.int64(0xFFFFFFFF)
+            fold_rows(self.buffer, np.full(len(keys), d, np.int8), src, tgt, hi, lo)
+        self.add_rows(d, *other)
+
+    def add_rows(self, d: int, src: np.ndarray, tgt: np.ndarray, values: np.ndarray) -> None:
+        from spark_align.engine.estep import to_fixed
+
+        fold_rows(self.buffer, np.full(len(src), d, np.int8), src, tgt, *to_fixed(values))
+
+    def _acc(self, d: int):
+        if d not in self.acc:
+            from spark_align.engine.tables import DIRS
+
+            table = self.tables[DIRS[d]]
+            n = len(table.keys)
+            self.acc[d] = (np.zeros(n, np.int64), np.zeros(n, np.int64), np.zeros(n, bool), table.keys)
+        return self.acc[d]
+
+    def payloads(self, n_buckets: int):
+        """(bucket, bytes) records: every count of this task, one record per non-empty bucket."""
+        from spark_align.engine.tables import DIRS
+
+        by_bucket: dict[int, list] = {}
+        for bucket, part in _split_arrays(*self.buffer.result(), n_buckets):
+            by_bucket.setdefault(bucket, []).append(part)
+        for d, (hi, lo, touched, table_keys) in sorted(self.acc.items()):
+            order, bounds = self.tables[DIRS[d]].bucket_order(d, n_buckets)
+            shift = (np.int64(d) << 62) + (np.int64(2) << 32)  # table key (src << 32 | tgt) -> row key
+            for bucket in range(n_buckets):
+                idx = order[bounds[bucket]:bounds[bucket + 1]]
+                idx = idx[touched[idx]]
+                if len(idx):
+                    by_bucket.setdefault(bucket, []).append((table_keys[idx] + shift, hi[idx], lo[idx]))
+        for bucket in sorted(by_bucket):
+            keys, hi, lo = (np.concatenate(x) for x in zip(*by_bucket[bucket]))
+            yield bucket, encode(keys, hi, lo)
+
+
+def _split_arrays(keys, hi, lo, n_buckets: int):
+    """(bucket, (keys, hi, lo)) for every non-empty bucket of the rows."""
     if len(keys) == 0:
         return
     bucket = counts.buckets_of(keys, n_buckets)
-    order = np.argsort(bucket, kind="stable")
-    bucket_sorted = bucket[order]
-    cuts = np.flatnonzero(np.diff(bucket_sorted)) + 1
+    order = np.argsort(bucket.astype(np.int16) if n_buckets < 2 ** 15 else bucket, kind="stable")
+    cuts = np.flatnonzero(np.diff(bucket[order])) + 1
     for part in np.split(order, cuts):
-        yield int(bucket[part[0]]), encode(keys[part], hi[part], lo[part])
+        yield int(bucket[part[0]]), (keys[part], hi[part], lo[part])
 
 
 def encode(keys: np.ndarray, hi: np.ndarray, lo: np.ndarray) -> bytes:

@@ -51,6 +51,40 @@ class DirectionTable:
             return np.full(len(dict_keys), self.constant)
         return ragged.lookup(self.keys, self.probs, dict_keys, MIN_PROB)
 
+    def positions(self, dict_keys: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
+        """(position in the table, found) of each key; None for a constant table.
+
+        The E-step looks keys up once and reuses the positions to add the block's counts into
+        table-aligned accumulators (``engine.mstep.TaskCounts``).
+        """
+        if self.constant is not None:
+            return None
+        return ragged.positions(self.keys, dict_keys)
+
+    def bucket_order(self, d: int, n_buckets: int) -> tuple[np.ndarray, np.ndarray]:
+        """(entry indexes grouped by reducer bucket, bucket boundaries) for direction index ``d``.
+
+        Computed once per table and bucket count in each Python worker, then reused by every task
+        that worker runs (``engine.mstep.TaskCounts.payloads``).
+        """
+        from spark_align.kernels.counts import bucket_of_cond
+
+        cache = self.__dict__.setdefault("_bucket_orders", {})
+        if (d, n_buckets) not in cache:
+            cond = (self.keys >> 32) if d == 0 else (self.keys & np.int64(0xFFFFFFFF))
+            bucket = bucket_of_cond(cond, d, n_buckets)
+            order = np.argsort(bucket.astype(np.int16) if n_buckets < 2 ** 15 else bucket, kind="stable")
+            bounds = np.searchsorted(bucket[order], np.arange(n_buckets + 1))
+            cache[(d, n_buckets)] = (order, bounds)
+        return cache[(d, n_buckets)]
+
+    def probs_at(self, found: tuple[np.ndarray, np.ndarray] | None, n: int) -> np.ndarray:
+        """What :meth:`local` returns, from :meth:`positions`' result for ``n`` keys."""
+        if found is None:
+            return np.full(n, self.constant)
+        pos, hit = found
+        return np.where(hit, self.probs[pos], MIN_PROB)
+
 
 def uniform_tables(directions: tuple[str, ...], src_vocab_size: int, tgt_vocab_size: int) -> dict[str, DirectionTable]:
     """Uniform initial tables: t(f | e) = 1 / |V_f| (the NULL id is not counted)."""

@@ -17,7 +17,6 @@ import numpy as np
 MAX_ID = 2 ** 30 - 2  # ids (and dense indexes) must stay below this
 FIELDS = ("dir", "src", "tgt", "hi", "lo")
 _LOW32 = np.int64(0xFFFFFFFF)
-_GOLDEN = np.uint64(0x9E3779B97F4A7C15)
 
 
 def row_keys(dirs: np.ndarray, src: np.ndarray, tgt: np.ndarray) -> np.ndarray:
@@ -80,16 +79,22 @@ class CountBuffer:
 
 
 def buckets_of(keys: np.ndarray, n_buckets: int) -> np.ndarray:
-    """Reducer bucket of each row: every lexical row with the same (dir, conditioning word), and every
-    dense entry with the same (dir, index), lands in the same bucket; scalars go to bucket 0.
+    """Reducer bucket of each row: every lexical row with the same (dir, conditioning word) lands in
+    the same bucket, and so does every row with the same key (dense entries, scalars).
 
-    The conditioning word is ``src`` for direction 0 (forward, t(tgt | src)) and ``tgt`` for direction 1.
+    The conditioning word is ``src`` for direction 0 (forward, t(tgt | src)) and ``tgt`` for
+    direction 1; dense and scalar rows (``src < 0``) hash their ``tgt``.
     """
-    dirs, src, tgt = split_keys(keys)
-    cond = np.where(src < 0, tgt, np.where(dirs == 0, src, tgt)).astype(np.uint64)
-    cond = np.where(src == -2, np.uint64(0), cond)
-    mixed = (cond * _GOLDEN + dirs.astype(np.uint64)) >> np.uint64(32)
-    return (mixed % np.uint64(n_buckets)).astype(np.int64)
+    dirs = keys >> 62
+    src = ((keys >> 32) & np.int64(2 ** 30 - 1)) - 2
+    cond = np.where((dirs == 0) & (src >= 0), src, keys & _LOW32)
+    return bucket_of_cond(cond, dirs, n_buckets)
+
+
+def bucket_of_cond(cond: np.ndarray, dirs, n_buckets: int) -> np.ndarray:
+    """Multiplicative hash of (conditioning word, direction) into ``n_buckets`` (consecutive ids spread)."""
+    mixed = (cond.astype(np.uint32) * np.uint32(2) + np.asarray(dirs).astype(np.uint32)) * np.uint32(0x9E3779B1)
+    return ((mixed >> np.uint32(8)) % np.uint32(n_buckets)).astype(np.int64)
 
 
 def from_fixed(hi: np.ndarray, lo: np.ndarray, hi_scale: float, lo_scale: float) -> np.ndarray:

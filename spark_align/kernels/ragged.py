@@ -211,12 +211,20 @@ def check_block(block: Block, *, full: bool = False) -> None:
             raise ValueError("dictionary keys are not sorted and unique")
 
 
+def positions(table_keys: np.ndarray, keys: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(position, found) of ``keys`` in a sorted key table; positions are valid indexes (0 if empty).
+
+    A galloping search compiled with numba (``kernels.lookup``): blocks' dictionaries are sorted.
+    """
+    from spark_align.kernels.lookup import positions as gallop_positions
+
+    return gallop_positions(table_keys, keys)
+
+
 def lookup(table_keys: np.ndarray, table_values: np.ndarray, keys: np.ndarray,
            default: float) -> np.ndarray:
     """Values of ``keys`` in a sorted key table; ``default`` where a key is absent."""
     if len(table_keys) == 0:
         return np.full(len(keys), default, dtype=np.float64)
-    pos = np.searchsorted(table_keys, keys)
-    pos_c = np.minimum(pos, len(table_keys) - 1)
-    found = table_keys[pos_c] == keys
-    return np.where(found, table_values[pos_c], default)
+    pos, found = positions(table_keys, keys)
+    return np.where(found, table_values[pos], default)

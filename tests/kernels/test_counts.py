@@ -65,8 +65,9 @@ def test_payloads_partition_rows_by_conditioning_word_and_round_trip():
         parts.append((k, a, b))
         d, s, t = counts.split_keys(k)
         for di, si, ti in zip(d.tolist(), s.tolist(), t.tolist()):
-            cond = (di, si if (si >= 0 and di == 0) else ti) if si != -2 else (di, -2)
-            assert seen_cond.setdefault(cond, bucket) == bucket, "a conditioning word split over buckets"
+            if si >= 0:  # lexical: all rows of one (direction, conditioning word) in one bucket
+                cond = (di, si if di == 0 else ti)
+                assert seen_cond.setdefault(cond, bucket) == bucket, "a conditioning word split over buckets"
     k, a, b = (np.concatenate(x) for x in zip(*parts))
     order = np.argsort(k)
     np.testing.assert_array_equal(k[order], keys)
@@ -95,6 +96,53 @@ def test_normalise_floors_tiny_probabilities():
     keys, h, lo_sum = counts.reduce_sorted(counts.row_keys(dirs, src, tgt), hi, lo)
     _, _, _, p = counts.normalise(keys, h, lo_sum, hi_scale=HI, lo_scale=LO, min_prob=1e-12)
     assert p[1] == 1e-12 and p[0] == pytest.approx(1.0)
+
+
+def test_table_aligned_task_counts_equal_the_plain_buffer():
+    """TaskCounts (table-aligned accumulators + buffer for keys the table lacks) emits the same sums."""
+    from spark_align.engine.tables import DirectionTable
+
+    rng = np.random.default_rng(5)
+    table_keys = np.unique((rng.integers(0, 40, 900).astype(np.int64) << 32) | rng.integers(0, 40, 900))
+    tabs = {"forward": DirectionTable(table_keys, rng.random(len(table_keys))),
+            "reverse": DirectionTable(table_keys[::2].copy(), rng.random(len(table_keys[::2])))}
+    task, plain = mstep.TaskCounts(tabs), counts.CountBuffer()
+    for _ in range(6):
+        dict_keys = np.unique((rng.integers(0, 45, 300).astype(np.int64) << 32) | rng.integers(0, 45, 300))
+        for d, name in enumerate(("forward", "reverse")):
+            emitted = rng.random(len(dict_keys)) < 0.9
+            values = rng.random(len(dict_keys)) * 3
+            other = (np.array([-1, -2], np.int32), np.array([d + 3, 0], np.int32), np.array([0.5, -7.0]))
+            task.add(dict_keys, tabs[name].positions(dict_keys), d, emitted, values, other)
+            src, tgt = dict_keys[emitted] >> 32, dict_keys[emitted] & 0xFFFFFFFF
+            all_src = np.concatenate([src, other[0]])
+            all_tgt = np.concatenate([tgt, other[1]])
+            hi, lo = estep.to_fixed(np.concatenate([values[emitted], other[2]]))
+            mstep.fold_rows(plain, np.full(len(all_src), d, np.int8), all_src, all_tgt, hi, lo)
+    got = [mstep.decode(data) for _, data in task.payloads(3)]
+    k, a, b = (np.concatenate(x) for x in zip(*got))
+    order = np.argsort(k)
+    keys, h, lo_sum = plain.result()
+    np.testing.assert_array_equal(k[order], keys)
+    np.testing.assert_array_equal(a[order], h)
+    np.testing.assert_array_equal(b[order], lo_sum)
+
+
+def test_galloping_positions_equal_searchsorted():
+    from spark_align.kernels import lookup
+
+    rng = np.random.default_rng(6)
+    table = np.unique(rng.integers(0, 10 ** 6, 5000).astype(np.int64))
+    for keys in (np.unique(rng.integers(-5, 10 ** 6 + 5, 700)).astype(np.int64),  # sorted, some absent
+                 rng.integers(0, 10 ** 6, 300).astype(np.int64),                 # unsorted
+                 np.array([], np.int64), table[[0, -1]]):
+        pos, hit = lookup.positions(table, keys)
+        ref = np.minimum(np.searchsorted(table, keys), len(table) - 1)
+        np.testing.assert_array_equal(hit, table[ref] == keys)
+        np.testing.assert_array_equal(pos[hit], ref[hit])
+        assert np.all((pos >= 0) & (pos < len(table)))
+    pos, hit = lookup.positions(np.array([], np.int64), np.array([3, 4], np.int64))
+    assert not hit.any() and list(pos) == [0, 0]
 
 
 def test_ids_beyond_the_key_range_are_refused():
