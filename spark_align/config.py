@@ -148,7 +148,7 @@ class RunConfig:
     symmetrization: str = "grow-diag-final-and"
     # How the E-step gets the table (engine/shipping.py); results are identical either way.
     shipping: str = "auto"
-    table_budget_mb: float = 256.0
+    table_budget_mb: float = 768.0
     # Drop translation probabilities below this after each M-step (None: keep all).
     prune_below: float | None = None
     extra: dict = field(default_factory=dict)

@@ -61,8 +61,9 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
                         "task), join (each block gets only its own word pairs, through a Spark join), or auto "
                         "(default): broadcast while the table takes at most --table-budget-mb, else join. "
                         "Results are identical")
-    g.add_argument("--table-budget-mb", type=float, default=256.0, metavar="MB",
-                   help="largest table (16 bytes per entry) that --shipping auto broadcasts (default 256)")
+    g.add_argument("--table-budget-mb", type=float, default=768.0, metavar="MB",
+                   help="largest table that --shipping auto gives whole to every Python worker, counted at 48 "
+                        "bytes per entry (table, count accumulators, bucket order; default 768)")
     g.add_argument("--prune-below", type=float, default=None, metavar="P",
                    help="after each iteration drop translation probabilities below P (they count as 1e-12); "
                         "smaller tables, slightly different results; off by default")

@@ -100,13 +100,16 @@ def make_estep(model, directions: tuple[str, ...], tables_src, dense: dict[str, 
                     lookup_seconds += time.perf_counter() - looked_up
                     for result in block_results(model, directions, block, t_locals, dense):
                         task.add(block.dict_keys, found[DIRS[result[0]]], *result)
+        records = list(task.payloads(n_buckets))
         note_task_memory("broadcast")
-        # Scalars 3 and 4, the same under every direction: the task's wall time (reading, table lookups,
-        # kernels, folding) and the time its table lookups took (both directions).
+        # Scalars 3 and 4, the same under every direction, in a record of their own: the task's wall time
+        # (reading, table lookups, kernels, folding, preparing its output) and its table-lookup time.
         values = np.array([time.perf_counter() - started, lookup_seconds])
+        timing = mstep.TaskCounts(tables)
         for direction in directions:
-            task.add_rows(DIRS.index(direction), np.full(2, SCALAR, np.int32), np.array([3, 4], np.int32), values)
-        yield from task.payloads(n_buckets)
+            timing.add_rows(DIRS.index(direction), np.full(2, SCALAR, np.int32), np.array([3, 4], np.int32), values)
+        yield from records
+        yield from timing.payloads(n_buckets)
 
     return estep
 

@@ -6,8 +6,10 @@ dictionary, ``MIN_PROB`` where the table has no entry), so both give the same
 counts, bit for bit.
 
 ``broadcast`` (``engine.tables``): every executor Python worker reads the whole
-table from the checkpoint. Per executor Python worker: 16 bytes x all table
-entries, whatever the partition holds; the driver holds none of it.
+table from the checkpoint. Per executor Python worker: about 48 bytes x all
+table entries (the sorted table, 16 bytes; the E-step's table-aligned count
+accumulators, 17; the table's order by reducer bucket, 8; rounded up),
+whatever the partition holds; the driver holds none of it.
 
 ``join`` (this module; distributed EM after Wolfe, Haghighi & Klein 2008):
 each block receives only the entries of its own dictionary, through Spark's
@@ -27,8 +29,8 @@ price is a shuffle per iteration of the block dictionary joined with the table
 grid: 4 bytes per cell), which the broadcast path avoids.
 
 The rule (``--shipping auto``): broadcast while the whole table fits the
-budget, ``entries x 16 bytes <= --table-budget-mb``, else join. The default
-budget (256 MB) is well under the memory a Python worker can use beside its
+budget, ``entries x 48 bytes <= --table-budget-mb``, else join. The default
+budget (768 MB, 16.7M entries) is well under the memory a Python worker can use beside its
 block work on a typical executor; raise it where executors are big, lower it
 where many Python workers share one executor's memory.
 """
@@ -42,15 +44,15 @@ from spark_align.engine.estep import STATS_SCHEMA, _maybe_fail, block_rows, note
 from spark_align.engine.ingest import blocks_from_batch
 from spark_align.engine.tables import DIRS, MIN_PROB
 
-BYTES_PER_ENTRY = 16  # int64 key + float64 probability in the broadcast arrays
-DEFAULT_BUDGET_MB = 256
+BYTES_PER_ENTRY = 48  # per Python worker per entry on the whole-table path (see the module docstring)
+DEFAULT_BUDGET_MB = 768
 BLOCK_DICT = ("encoded", "block_dict")
 
 
 def choose_shipping(mode: str, n_entries: int | None, budget_mb: float) -> str:
     """'broadcast' or 'join' for a table of ``n_entries`` rows (None: the constant initial table).
 
-    ``auto`` broadcasts while ``n_entries * 16 bytes <= budget_mb * 2**20``.
+    ``auto`` broadcasts while ``n_entries * BYTES_PER_ENTRY <= budget_mb * 2**20``.
     """
     if mode not in SHIPPING_MODES:
         raise ValueError(f"shipping must be one of {', '.join(SHIPPING_MODES)}, not {mode!r}")

@@ -8,16 +8,17 @@ Whole-table shipping (this module, ``--shipping broadcast``): every executor
 Python worker reads the checkpoint's table files itself (pyarrow through
 fsspec, :class:`TableSource`) once per iteration and turns each direction into
 two numpy arrays sorted by key (int64 key + float64 probability = 16 bytes per
-entry). Memory per executor = 16 bytes x table entries x Python workers on
-that executor (plus the Arrow read while it is converted); the driver holds
-nothing table-sized. Each block then looks up only its own dictionary
-(``searchsorted``, n_dict log(table size) per block per iteration) and runs
+entry; with the E-step's count accumulators about 48, see ``engine.shipping``).
+Memory per executor = that x table entries x Python workers on that executor
+(plus the Arrow read while it is converted); the driver holds nothing
+table-sized. Each block then looks up only its own dictionary (a galloping
+search, ``kernels.lookup``: both key lists are sorted) and runs
 its E-step on that local slice, so the per-link lookup in the kernel is a
 gather from a small array. Executors therefore need the fsspec backend of the
 run directory's storage (s3fs for ``s3a://`` run directories, for example).
 
 Per-block shipping (``engine.shipping``): when the table is larger than a
-budget (``--shipping auto``, 16 bytes x entries > ``--table-budget-mb``) or
+budget (``--shipping auto``, 48 bytes x entries > ``--table-budget-mb``) or
 when forced (``--shipping join``), each block instead receives only its own
 dictionary's entries through a Spark join, and nothing table-sized is held by
 the driver or by any task. Both paths give every block the same local vector
@@ -61,21 +62,19 @@ class DirectionTable:
             return None
         return ragged.positions(self.keys, dict_keys)
 
-    def bucket_order(self, d: int, n_buckets: int) -> tuple[np.ndarray, np.ndarray]:
-        """(entry indexes grouped by reducer bucket, bucket boundaries) for direction index ``d``.
+    def entry_buckets(self, d: int, n_buckets: int) -> np.ndarray:
+        """Reducer bucket of every table entry for direction index ``d`` (int16 while it fits).
 
         Computed once per table and bucket count in each Python worker, then reused by every task
         that worker runs (``engine.mstep.TaskCounts.payloads``).
         """
         from spark_align.kernels.counts import bucket_of_cond
 
-        cache = self.__dict__.setdefault("_bucket_orders", {})
+        cache = self.__dict__.setdefault("_entry_buckets", {})
         if (d, n_buckets) not in cache:
             cond = (self.keys >> 32) if d == 0 else (self.keys & np.int64(0xFFFFFFFF))
             bucket = bucket_of_cond(cond, d, n_buckets)
-            order = np.argsort(bucket.astype(np.int16) if n_buckets < 2 ** 15 else bucket, kind="stable")
-            bounds = np.searchsorted(bucket[order], np.arange(n_buckets + 1))
-            cache[(d, n_buckets)] = (order, bounds)
+            cache[(d, n_buckets)] = bucket.astype(np.int16) if n_buckets < 2 ** 15 else bucket
         return cache[(d, n_buckets)]
 
     def probs_at(self, found: tuple[np.ndarray, np.ndarray] | None, n: int) -> np.ndarray:

@@ -111,15 +111,16 @@ def normalise(keys: np.ndarray, hi: np.ndarray, lo: np.ndarray, *, hi_scale: flo
     dirs, src, tgt = split_keys(keys)
     lex = src >= 0
     dirs, src, tgt, hi, lo = dirs[lex], src[lex], tgt[lex], hi[lex], lo[lex]
-    cond = np.where(dirs == 0, src, tgt).astype(np.int64)
-    group = (dirs.astype(np.int64) << 32) | cond
-    uniq, inverse = np.unique(group, return_inverse=True)
-    order = np.argsort(inverse, kind="stable")
-    starts = np.flatnonzero(np.concatenate([[True], inverse[order][1:] != inverse[order][:-1]])) \
-        if len(order) else np.zeros(0, np.int64)
-    t_hi = np.add.reduceat(hi[order], starts) if len(order) else hi
-    t_lo = np.add.reduceat(lo[order], starts) if len(order) else lo
-    assert len(t_hi) == len(uniq)
-    total = from_fixed(t_hi, t_lo, hi_scale, lo_scale)[inverse]
+    total = np.empty(len(hi))
+    for d, cond in ((0, src), (1, tgt)):
+        sel = dirs == d
+        if not sel.any():
+            continue
+        c = cond[sel]
+        t_hi = np.zeros(int(c.max()) + 1, np.int64)
+        t_lo = np.zeros(int(c.max()) + 1, np.int64)
+        np.add.at(t_hi, c, hi[sel])
+        np.add.at(t_lo, c, lo[sel])
+        total[sel] = from_fixed(t_hi, t_lo, hi_scale, lo_scale)[c]
     count = from_fixed(hi, lo, hi_scale, lo_scale)
     return dirs, src, tgt, np.maximum(count / total, min_prob)

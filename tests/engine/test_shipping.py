@@ -21,7 +21,7 @@ from tests.engine.helpers import TOY_SOURCE, TOY_TARGET, config, manifest, read_
 # -- the size rule (no Spark) --------------------------------------------------------------
 def test_auto_rule_switches_at_the_documented_threshold():
     budget_mb = 1.0
-    at_budget = 2 ** 20 // shipping.BYTES_PER_ENTRY  # 65536 entries x 16 bytes == 1 MB
+    at_budget = 2 ** 20 // shipping.BYTES_PER_ENTRY  # the most entries that fit 1 MB
     assert shipping.choose_shipping("auto", at_budget, budget_mb) == "broadcast"
     assert shipping.choose_shipping("auto", at_budget + 1, budget_mb) == "join"
     assert shipping.choose_shipping("broadcast", 10 ** 12, budget_mb) == "broadcast"
