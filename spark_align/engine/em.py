@@ -25,7 +25,6 @@ from spark_align.errors import NumericalError
 from spark_align.store import FORMAT_VERSION, RunStore, fsspec_url
 
 TASKS_PER_CORE = 2
-LEX_SCHEMA_COLUMNS = ("dir", "src", "tgt", "prob")
 
 
 @dataclass

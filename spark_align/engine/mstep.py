@@ -31,13 +31,13 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
+from spark_align.engine.estep import DENSE, SCALAR, to_fixed
 from spark_align.kernels import counts
 from spark_align.store import BUCKET_PROTOCOLS
 
 TABLE_SCHEMA = pa.schema([("dir", pa.int8()), ("src", pa.int32()), ("tgt", pa.int32()), ("prob", pa.float64())])
 _PAYLOAD_SCHEMA = pa.schema([("key_delta", pa.int64()), ("hi", pa.int64()), ("lo", pa.int64())])
 _IPC_OPTIONS = pa.ipc.IpcWriteOptions(compression=pa.Codec("zstd", compression_level=1))
-DENSE, SCALAR = -1, -2
 
 
 def fold_rows(buffer: counts.CountBuffer, dirs, src, tgt, hi, lo) -> None:
@@ -72,8 +72,6 @@ class TaskCounts:
     def add(self, dict_keys: np.ndarray, found, d: int, emitted: np.ndarray, values: np.ndarray, other) -> None:
         """One block's result for direction ``d`` (``engine.estep.block_results``); ``found`` = the
         table's ``positions`` of ``dict_keys`` (None: constant table)."""
-        from spark_align.engine.estep import to_fixed
-
         hi, lo = to_fixed(values[emitted])
         keys = dict_keys[emitted]
         if found is not None:
@@ -90,8 +88,6 @@ class TaskCounts:
         self.add_rows(d, *other)
 
     def add_rows(self, d: int, src: np.ndarray, tgt: np.ndarray, values: np.ndarray) -> None:
-        from spark_align.engine.estep import to_fixed
-
         fold_rows(self.buffer, np.full(len(src), d, np.int8), src, tgt, *to_fixed(values))
 
     def _acc(self, d: int):

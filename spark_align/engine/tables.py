@@ -153,14 +153,10 @@ def _read_parquet_on_driver(spark, path: str):
     pyarrow read of the same files is an order of magnitude faster. Spark remains the fallback for
     storage only Spark is configured for (no fsspec backend installed on the driver).
     """
-    import fsspec
-    import pyarrow.parquet as pq
-
     from spark_align.store import fsspec_url
 
     try:
-        fs, root = fsspec.core.url_to_fs(fsspec_url(path))
-        return pq.read_table(root, filesystem=fs, columns=["dir", "src", "tgt", "prob"])
+        return read_table_arrow(fsspec_url(path))
     except (ImportError, OSError, ValueError):
         return spark.read.parquet(path).toArrow()
 
