@@ -20,7 +20,7 @@ from spark_align.engine import faults
 from spark_align.engine import shipping
 from spark_align.engine import tables as tables_mod
 from spark_align.engine import mstep
-from spark_align.engine.estep import HI_SCALE, LO_SCALE, make_estep
+from spark_align.engine.estep import make_estep
 from spark_align.errors import NumericalError
 from spark_align.store import FORMAT_VERSION, RunStore, fsspec_url
 
@@ -92,7 +92,7 @@ class Trainer:
     def block_units(self) -> list[tuple[str, int]]:
         """(file, row group) of every row group of the encoded blocks, listed once per run."""
         if self._units is None:
-            self._units = mstep.block_units(self.store.fs, self.store.fsspec_path("encoded", "blocks"))
+            self._units = mstep.block_units(self.store)
         return self._units
 
     def n_reducers(self) -> int:
@@ -132,12 +132,11 @@ class Trainer:
                 faults.kill_during_write("mstep-write", stage.model, state.iteration + 1,
                                          self.store.spark_path(rel, "lex")):
             summaries = mstep.reduce_and_write(
-                sc, pairs, n_parts, fsspec_url(self.store.spark_path(rel, "lex")), hi_scale=HI_SCALE,
-                lo_scale=LO_SCALE, min_prob=tables_mod.MIN_PROB, prune_below=self.cfg.prune_below)
+                sc, pairs, n_parts, fsspec_url(self.store.spark_path(rel, "lex")), min_prob=tables_mod.MIN_PROB,
+                prune_below=self.cfg.prune_below)
         job_seconds = time.perf_counter() - started
         self.store.remove(rel, "lex", "_temporary")
-        sums = mstep.combine(summaries, self.directions, tables_mod.DIRS, hi_scale=HI_SCALE, lo_scale=LO_SCALE,
-                             prune_below=self.cfg.prune_below)
+        sums = mstep.combine(summaries, self.directions, prune_below=self.cfg.prune_below)
         new_dense, metrics = {}, {}
         for d in self.directions:
             n = model.dense_size()

@@ -48,11 +48,6 @@ def to_fixed(values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return hi.astype(np.int64), lo.astype(np.int64)
 
 
-def from_fixed(hi, lo):
-    """Inverse of :func:`to_fixed` for (summed) integers; numpy arrays or Spark columns."""
-    return hi * (1.0 / HI_SCALE) + lo * (1.0 / (HI_SCALE * LO_SCALE))
-
-
 def _maybe_fail() -> None:
     """Test-only faults at the start of every E-step task (both shipping paths call it)."""
     faults.kill_in_task()

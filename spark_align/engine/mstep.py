@@ -31,7 +31,8 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from spark_align.engine.estep import DENSE, SCALAR, to_fixed
+from spark_align.engine.estep import DENSE, HI_SCALE, LO_SCALE, SCALAR, to_fixed
+from spark_align.engine.tables import DIRS
 from spark_align.kernels import counts
 from spark_align.store import BUCKET_PROTOCOLS
 
@@ -92,8 +93,6 @@ class TaskCounts:
 
     def _acc(self, d: int):
         if d not in self.acc:
-            from spark_align.engine.tables import DIRS
-
             table = self.tables[DIRS[d]]
             n = len(table.keys)
             self.acc[d] = (np.zeros(n, np.int64), np.zeros(n, np.int64), np.zeros(n, bool), table.keys)
@@ -101,8 +100,6 @@ class TaskCounts:
 
     def payloads(self, n_buckets: int):
         """(bucket, bytes) records: every count of this task, one record per non-empty bucket."""
-        from spark_align.engine.tables import DIRS
-
         by_bucket: dict[int, list] = {}
         for bucket, part in _split_arrays(*self.buffer.result(), n_buckets):
             by_bucket.setdefault(bucket, []).append(part)
@@ -110,14 +107,10 @@ class TaskCounts:
             # Cost follows the entries this task touched, not the table: one scan of a byte per entry,
             # then a radix sort of the touched entries' buckets.
             nz = np.flatnonzero(touched)
-            bucket = self.tables[DIRS[d]].entry_buckets(d, n_buckets)[nz]
-            order = np.argsort(bucket, kind="stable")
-            bounds = np.searchsorted(bucket[order], np.arange(n_buckets + 1))
             shift = (np.int64(d) << 62) + (np.int64(2) << 32)  # table key (src << 32 | tgt) -> row key
-            for b in range(n_buckets):
-                idx = nz[order[bounds[b]:bounds[b + 1]]]
-                if len(idx):
-                    by_bucket.setdefault(b, []).append((table_keys[idx] + shift, hi[idx], lo[idx]))
+            for b, part in _groups(self.tables[DIRS[d]].entry_buckets(d, n_buckets)[nz]):
+                idx = nz[part]
+                by_bucket.setdefault(b, []).append((table_keys[idx] + shift, hi[idx], lo[idx]))
         for bucket in sorted(by_bucket):
             keys, hi, lo = (np.concatenate(x) for x in zip(*by_bucket[bucket]))
             yield bucket, encode(keys, hi, lo)
@@ -125,13 +118,20 @@ class TaskCounts:
 
 def _split_arrays(keys, hi, lo, n_buckets: int):
     """(bucket, (keys, hi, lo)) for every non-empty bucket of the rows."""
-    if len(keys) == 0:
+    for b, part in _groups(counts.buckets_of(keys, n_buckets)):
+        yield b, (keys[part], hi[part], lo[part])
+
+
+def _groups(bucket: np.ndarray):
+    """(bucket, row indexes in their original order) for every bucket present (a stable radix sort while
+    bucket numbers fit 16 bits)."""
+    if len(bucket) == 0:
         return
-    bucket = counts.buckets_of(keys, n_buckets)
-    order = np.argsort(bucket.astype(np.int16) if n_buckets < 2 ** 15 else bucket, kind="stable")
+    small = bucket.astype(np.int16) if bucket.max() < 2 ** 15 else bucket
+    order = np.argsort(small, kind="stable")
     cuts = np.flatnonzero(np.diff(bucket[order])) + 1
     for part in np.split(order, cuts):
-        yield int(bucket[part[0]]), (keys[part], hi[part], lo[part])
+        yield int(bucket[part[0]]), part
 
 
 def encode(keys: np.ndarray, hi: np.ndarray, lo: np.ndarray) -> bytes:
@@ -174,8 +174,7 @@ def part_name(index: int) -> str:
     return f"part-{index:05d}.parquet"
 
 
-def make_reducer(lex_url: str, *, hi_scale: float, lo_scale: float, min_prob: float,
-                 prune_below: float | None):
+def make_reducer(lex_url: str, *, min_prob: float, prune_below: float | None):
     """The reducer: (partition index, (bucket, payload) records) -> one small summary dict.
 
     ``lex_url``: fsspec URL of the table directory being written.
@@ -194,7 +193,7 @@ def make_reducer(lex_url: str, *, hi_scale: float, lo_scale: float, min_prob: fl
         for kind, code in (("dense", DENSE), ("scalar", SCALAR)):
             for k in np.flatnonzero(src == code):
                 summary[kind][(int(dirs[k]), int(tgt[k]))] = (int(hi[k]), int(lo[k]))
-        t_dir, t_src, t_tgt, prob = counts.normalise(keys, hi, lo, hi_scale=hi_scale, lo_scale=lo_scale,
+        t_dir, t_src, t_tgt, prob = counts.normalise(keys, hi, lo, hi_scale=HI_SCALE, lo_scale=LO_SCALE,
                                                      min_prob=min_prob)
         if prune_below is not None:
             below = prob < prune_below
@@ -221,8 +220,7 @@ def make_reducer(lex_url: str, *, hi_scale: float, lo_scale: float, min_prob: fl
     return reduce
 
 
-def combine(summaries: list[dict], directions: tuple[str, ...], all_dirs: tuple[str, ...], *,
-            hi_scale: float, lo_scale: float, prune_below: float | None) -> dict:
+def combine(summaries: list[dict], directions: tuple[str, ...], *, prune_below: float | None) -> dict:
     """The reducers' summaries as per-direction sums: dense/scalar values, entries, pruning report."""
     ints: dict[tuple[str, int, int], list[int]] = {}
     for s in summaries:
@@ -233,16 +231,16 @@ def combine(summaries: list[dict], directions: tuple[str, ...], all_dirs: tuple[
                 acc[1] += lo
     out = {d: {"dense": {}, "scalar": {}, "entries": 0, "pruned": None} for d in directions}
     for (kind, d, idx), (h, lo) in ints.items():
-        out[all_dirs[d]][kind][idx] = float(counts.from_fixed(np.array([h], np.int64), np.array([lo], np.int64),
-                                                              hi_scale, lo_scale)[0])
+        out[DIRS[d]][kind][idx] = float(counts.from_fixed(np.array([h], np.int64), np.array([lo], np.int64),
+                                                          HI_SCALE, LO_SCALE)[0])
     for s in sorted(summaries, key=lambda s: s["part"]):
         for d, n in s["entries"].items():
-            out[all_dirs[d]]["entries"] += n
+            out[DIRS[d]]["entries"] += n
     if prune_below is not None:
         for d in directions:
             removed, mass = 0, 0.0
             for s in sorted(summaries, key=lambda s: s["part"]):
-                r, m = s["pruned"].get(all_dirs.index(d), (0, 0.0))
+                r, m = s["pruned"].get(DIRS.index(d), (0, 0.0))
                 removed += r
                 mass += m
             out[d]["pruned"] = {"threshold": prune_below, "removed": removed, "kept": out[d]["entries"],
@@ -257,15 +255,12 @@ def reduce_and_write(sc, pairs, n_parts: int, lex_url: str, **kwargs) -> list[di
 
 
 # -- reading encoded blocks straight from Parquet in the E-step tasks ----------------------------
-def block_units(fs, root: str) -> list[tuple[str, int]]:
-    """(file path, row group) of every row group of the encoded blocks (footers only are read)."""
+def block_units(store) -> list[tuple[str, int]]:
+    """(file path, row group) of every row group of a run's encoded blocks (footers only are read)."""
     units = []
-    root = fs._strip_protocol(root)
-    for path in sorted(fs.find(root)):
-        name = posixpath.relpath(path, root)
-        if any(seg.startswith(("_", ".")) for seg in name.split("/")) or not name.endswith(".parquet"):
-            continue
-        with fs.open(path, "rb") as fh:
+    for name in sorted(store.files("encoded", "blocks")):
+        path = store.fsspec_path("encoded", "blocks", name)
+        with store.fs.open(path, "rb") as fh:
             n = pq.ParquetFile(fh).metadata.num_row_groups
         units.extend((path, rg) for rg in range(n))
     return units

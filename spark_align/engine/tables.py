@@ -123,8 +123,6 @@ class TableSource:
     def unpersist(self) -> None:
         """Nothing to free on the driver (kept so callers can treat it like a broadcast)."""
 
-    destroy = unpersist
-
 
 def table_source(table_path: str | None, directions: tuple[str, ...], src_vocab_size: int,
                  tgt_vocab_size: int) -> TableSource:
