@@ -90,8 +90,9 @@ def make_estep(model, directions: tuple[str, ...], tables_src, dense: dict[str, 
             for batch in mstep.read_unit(fs, path, row_group):
                 for _block_id, _rows, block in blocks_from_batch(batch):
                     looked_up = time.perf_counter()
-                    found = {d: tables[d].positions(block.dict_keys) for d in directions}
-                    t_locals = {d: tables[d].probs_at(found[d], len(block.dict_keys)) for d in directions}
+                    found, t_locals = {}, {}
+                    for d in directions:
+                        found[d], t_locals[d] = tables[d].find(block.dict_keys)
                     lookup_seconds += time.perf_counter() - looked_up
                     for result in block_results(model, directions, block, t_locals, dense):
                         task.add(block.dict_keys, found[DIRS[result[0]]], *result)

@@ -32,7 +32,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from spark_align.engine.estep import DENSE, HI_SCALE, LO_SCALE, SCALAR, to_fixed
-from spark_align.engine.tables import DIRS
+from spark_align.engine.tables import BUCKET_META, BUCKETS_META, DIRS
 from spark_align.kernels import counts
 from spark_align.store import BUCKET_PROTOCOLS
 
@@ -68,24 +68,22 @@ class TaskCounts:
     def __init__(self, tables: dict) -> None:
         self.tables = tables
         self.buffer = counts.CountBuffer()
-        self.acc: dict[int, tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]] = {}
+        self.acc: dict[int, tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
 
     def add(self, dict_keys: np.ndarray, found, d: int, emitted: np.ndarray, values: np.ndarray, other) -> None:
         """One block's result for direction ``d`` (``engine.estep.block_results``); ``found`` = the
         table's ``positions`` of ``dict_keys`` (None: constant table)."""
-        hi, lo = to_fixed(values[emitted])
-        keys = dict_keys[emitted]
-        if found is not None:
-            pos, hit = found[0][emitted], found[1][emitted]
+        if found is None:
+            keys, values = dict_keys[emitted], values[emitted]
+        else:
             acc = self._acc(d)
-            where = pos[hit]
-            acc[0][where] += hi[hit]   # dictionary keys are unique: no index repeats within a block
-            acc[1][where] += lo[hit]
-            acc[2][where] = True
-            keys, hi, lo = keys[~hit], hi[~hit], lo[~hit]
+            # dictionary keys are unique, so no position repeats within a block
+            miss = counts.add_at_positions(found[0], found[1], emitted, values, acc[0], acc[1],
+                                           hi_scale=HI_SCALE, lo_scale=LO_SCALE)
+            keys, values = dict_keys[miss], values[miss]
         if len(keys):
             src, tgt = keys >> 32, keys & np.int64(0xFFFFFFFF)
-            fold_rows(self.buffer, np.full(len(keys), d, np.int8), src, tgt, hi, lo)
+            fold_rows(self.buffer, np.full(len(keys), d, np.int8), src, tgt, *to_fixed(values))
         self.add_rows(d, *other)
 
     def add_rows(self, d: int, src: np.ndarray, tgt: np.ndarray, values: np.ndarray) -> None:
@@ -95,7 +93,7 @@ class TaskCounts:
         if d not in self.acc:
             table = self.tables[DIRS[d]]
             n = len(table.keys)
-            self.acc[d] = (np.zeros(n, np.int64), np.zeros(n, np.int64), np.zeros(n, bool), table.keys)
+            self.acc[d] = (np.zeros((n, 2), np.int64), np.zeros(n, bool), table.keys)
         return self.acc[d]
 
     def payloads(self, n_buckets: int):
@@ -103,14 +101,14 @@ class TaskCounts:
         by_bucket: dict[int, list] = {}
         for bucket, part in _split_arrays(*self.buffer.result(), n_buckets):
             by_bucket.setdefault(bucket, []).append(part)
-        for d, (hi, lo, touched, table_keys) in sorted(self.acc.items()):
+        for d, (acc, touched, table_keys) in sorted(self.acc.items()):
             # Cost follows the entries this task touched, not the table: one scan of a byte per entry,
             # then a radix sort of the touched entries' buckets.
             nz = np.flatnonzero(touched)
             shift = (np.int64(d) << 62) + (np.int64(2) << 32)  # table key (src << 32 | tgt) -> row key
             for b, part in _groups(self.tables[DIRS[d]].entry_buckets(d, n_buckets)[nz]):
                 idx = nz[part]
-                by_bucket.setdefault(b, []).append((table_keys[idx] + shift, hi[idx], lo[idx]))
+                by_bucket.setdefault(b, []).append((table_keys[idx] + shift, acc[idx, 0], acc[idx, 1]))
         for bucket in sorted(by_bucket):
             keys, hi, lo = (np.concatenate(x) for x in zip(*by_bucket[bucket]))
             yield bucket, encode(keys, hi, lo)
@@ -174,10 +172,12 @@ def part_name(index: int) -> str:
     return f"part-{index:05d}.parquet"
 
 
-def make_reducer(lex_url: str, *, min_prob: float, prune_below: float | None):
+def make_reducer(lex_url: str, n_parts: int, *, min_prob: float, prune_below: float | None):
     """The reducer: (partition index, (bucket, payload) records) -> one small summary dict.
 
-    ``lex_url``: fsspec URL of the table directory being written.
+    ``lex_url``: fsspec URL of the table directory being written; ``n_parts``: the number of reducers
+    (buckets). Each file records its bucket in its schema metadata, so the next E-step can use the
+    files as they are (``engine.tables.read_worker_tables``).
     """
 
     def reduce(index, records):
@@ -204,8 +204,9 @@ def make_reducer(lex_url: str, *, min_prob: float, prune_below: float | None):
             t_dir, t_src, t_tgt, prob = t_dir[keep], t_src[keep], t_tgt[keep], prob[keep]
         for d in np.unique(t_dir):
             summary["entries"][int(d)] = int(np.count_nonzero(t_dir == d))
+        schema = TABLE_SCHEMA.with_metadata({BUCKET_META: str(index), BUCKETS_META: str(n_parts)})
         table = pa.Table.from_arrays([pa.array(t_dir), pa.array(t_src), pa.array(t_tgt), pa.array(prob)],
-                                     schema=TABLE_SCHEMA)
+                                     schema=schema)
         fs, root = fsspec.core.url_to_fs(lex_url)
         protocols = fs.protocol if isinstance(fs.protocol, tuple) else (fs.protocol,)
         if not set(protocols) & BUCKET_PROTOCOLS:  # object stores need no directories
@@ -251,7 +252,7 @@ def combine(summaries: list[dict], directions: tuple[str, ...], *, prune_below: 
 def reduce_and_write(sc, pairs, n_parts: int, lex_url: str, **kwargs) -> list[dict]:
     """Shuffle (bucket, payload) records to ``n_parts`` reducers, write the table; returns summaries."""
     return (pairs.partitionBy(n_parts, lambda bucket: bucket)
-            .mapPartitionsWithIndex(make_reducer(lex_url, **kwargs)).collect())
+            .mapPartitionsWithIndex(make_reducer(lex_url, n_parts, **kwargs)).collect())
 
 
 # -- reading encoded blocks straight from Parquet in the E-step tasks ----------------------------

@@ -64,9 +64,9 @@ def mean_posterior(links, dense_fwd, dense_rev) -> np.ndarray:
     for dense in (dense_fwd, dense_rev):
         dkey = _link_key(*dense[:3])
         order = np.argsort(dkey)
-        from spark_align.kernels.ragged import lookup
+        from spark_align.kernels.lookup import find
 
-        total += lookup(dkey[order], dense[3][order], key, 0.0)
+        total += find(dkey[order], dense[3][order], key, 0.0)[2]
     return total / 2.0
 
 

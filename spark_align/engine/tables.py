@@ -28,6 +28,7 @@ table through :class:`TableSource` too.
 """
 from __future__ import annotations
 
+import posixpath
 from dataclasses import dataclass
 
 import numpy as np
@@ -48,9 +49,7 @@ class DirectionTable:
 
     def local(self, dict_keys: np.ndarray) -> np.ndarray:
         """Probabilities of a block dictionary's entries (MIN_PROB where a key is unknown)."""
-        if self.constant is not None:
-            return np.full(len(dict_keys), self.constant)
-        return ragged.lookup(self.keys, self.probs, dict_keys, MIN_PROB)
+        return self.find(dict_keys)[1]
 
     def positions(self, dict_keys: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
         """(position in the table, found) of each key; None for a constant table.
@@ -62,11 +61,21 @@ class DirectionTable:
             return None
         return ragged.positions(self.keys, dict_keys)
 
+    def find(self, dict_keys: np.ndarray) -> tuple[tuple[np.ndarray, np.ndarray] | None, np.ndarray]:
+        """(:meth:`positions`, :meth:`local`) in one pass over the table."""
+        if self.constant is not None:
+            return None, np.full(len(dict_keys), self.constant)
+        from spark_align.kernels.lookup import find
+
+        pos, hit, probs = find(self.keys, self.probs, dict_keys, MIN_PROB)
+        return (pos, hit), probs
+
     def entry_buckets(self, d: int, n_buckets: int) -> np.ndarray:
         """Reducer bucket of every table entry for direction index ``d`` (int16 while it fits).
 
-        Computed once per table and bucket count in each Python worker, then reused by every task
-        that worker runs (``engine.mstep.TaskCounts.payloads``).
+        Computed once per table and bucket count in each Python worker (or known from the files the
+        table was read from, :func:`read_worker_tables`), then reused by every task that worker runs
+        (``engine.mstep.TaskCounts.payloads``).
         """
         from spark_align.kernels.counts import bucket_of_cond
 
@@ -76,13 +85,6 @@ class DirectionTable:
             bucket = bucket_of_cond(cond, d, n_buckets)
             cache[(d, n_buckets)] = bucket.astype(np.int16) if n_buckets < 2 ** 15 else bucket
         return cache[(d, n_buckets)]
-
-    def probs_at(self, found: tuple[np.ndarray, np.ndarray] | None, n: int) -> np.ndarray:
-        """What :meth:`local` returns, from :meth:`positions`' result for ``n`` keys."""
-        if found is None:
-            return np.full(n, self.constant)
-        pos, hit = found
-        return np.where(hit, self.probs[pos], MIN_PROB)
 
 
 def uniform_tables(directions: tuple[str, ...], src_vocab_size: int, tgt_vocab_size: int) -> dict[str, DirectionTable]:
@@ -117,7 +119,7 @@ class TableSource:
             if self.url is None:
                 _WORKER_CACHE[key] = uniform_tables(self.directions, *self.vocab_sizes)
             else:
-                _WORKER_CACHE[key] = tables_from_arrow(read_table_arrow(self.url), self.directions)
+                _WORKER_CACHE[key] = read_worker_tables(self.url, self.directions)
         return _WORKER_CACHE[key]
 
     def unpersist(self) -> None:
@@ -142,6 +144,49 @@ def read_table_arrow(url: str):
 
     fs, root = fsspec.core.url_to_fs(url)
     return pq.read_table(root, filesystem=fs, columns=["dir", "src", "tgt", "prob"])
+
+
+# Schema metadata of a reducer's table file: its bucket and the number of buckets (``engine.mstep``).
+BUCKET_META, BUCKETS_META = b"spark_align.bucket", b"spark_align.buckets"
+
+
+def read_worker_tables(url: str, directions: tuple[str, ...]) -> dict[str, DirectionTable]:
+    """A checkpoint table as the E-step uses it, read from the reducers' files one at a time.
+
+    Each reducer file holds one bucket's rows sorted by (dir, src, tgt) and names its bucket in its
+    metadata. Concatenated in bucket order, each direction's keys are a few sorted runs, which a
+    stable sort merges quickly, and each entry's reducer bucket is known without hashing (see
+    :meth:`DirectionTable.entry_buckets`). Tables without that metadata (written by an older
+    version) are read whole.
+    """
+    import fsspec
+    import pyarrow.parquet as pq
+
+    fs, root = fsspec.core.url_to_fs(url)
+    names = sorted(posixpath.basename(p.rstrip("/")) for p in fs.ls(root, detail=False))
+    names = [n for n in names if not n.startswith(("_", "."))]
+    runs: dict[str, list] = {d: [] for d in directions}
+    for index, name in enumerate(names):
+        with fs.open(posixpath.join(root, name), "rb") as fh:
+            part = pq.read_table(fh, columns=["dir", "src", "tgt", "prob"])
+        meta = part.schema.metadata or {}
+        if meta.get(BUCKET_META) != str(index).encode() or meta.get(BUCKETS_META) != str(len(names)).encode():
+            return tables_from_arrow(read_table_arrow(url), directions)
+        dir_col, src, tgt, prob = (part.column(i).to_numpy() for i in range(4))
+        for d in directions:
+            lo, hi = np.searchsorted(dir_col, [DIRS.index(d), DIRS.index(d) + 1])  # sorted by dir first
+            runs[d].append((ragged.make_key(src[lo:hi], tgt[lo:hi]), prob[lo:hi]))
+    if not names:
+        return tables_from_arrow(read_table_arrow(url), directions)
+    out = {}
+    for d in directions:
+        keys, probs = (np.concatenate(x) for x in zip(*runs[d]))
+        order = np.argsort(keys, kind="stable")  # merges the runs: 0.04-0.07 s for 3.4M entries
+        out[d] = DirectionTable(keys[order], probs[order])
+        small = np.int16 if len(names) < 2 ** 15 else np.int64
+        bucket = np.repeat(np.arange(len(names), dtype=small), [len(k) for k, _ in runs[d]])[order]
+        out[d].__dict__.setdefault("_entry_buckets", {})[(DIRS.index(d), len(names))] = bucket
+    return out
 
 
 def _read_parquet_on_driver(spark, path: str):

@@ -14,8 +14,9 @@ from numba import njit
 
 
 @njit(cache=True, nogil=True)
-def _gallop(table_keys, keys, pos_out, hit_out):  # pragma: no cover - compiled
+def _gallop(table_keys, keys, pos_out, hit_out, table_values, default, values_out):  # pragma: no cover
     n = len(table_keys)
+    with_values = len(values_out) > 0
     pos = 0
     for i in range(len(keys)):
         k = keys[i]
@@ -37,19 +38,33 @@ def _gallop(table_keys, keys, pos_out, hit_out):  # pragma: no cover - compiled
             else:
                 hi = mid
         pos = lo
-        if lo < n:
-            pos_out[i] = lo
-            hit_out[i] = table_keys[lo] == k
-        else:
-            pos_out[i] = n - 1
-            hit_out[i] = False
+        found = lo < n and table_keys[lo] == k
+        pos_out[i] = lo if lo < n else n - 1
+        hit_out[i] = found
+        if with_values:
+            values_out[i] = table_values[lo] if found else default
 
 
 def positions(table_keys: np.ndarray, keys: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """(position, found) of ``keys`` in the sorted ``table_keys``: the index of the first table key
     >= each key (clipped to a valid index), and whether it is equal. Fastest for sorted ``keys``."""
+    pos, hit, _ = _search(table_keys, keys, None, 0.0)
+    return pos, hit
+
+
+def find(table_keys: np.ndarray, table_values: np.ndarray, keys: np.ndarray,
+         default: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """:func:`positions` and the values found (``default`` where a key is absent), in the same pass:
+    the value sits beside the key the search has just read, so it costs no second scattered read."""
+    return _search(table_keys, keys, table_values, default)
+
+
+def _search(table_keys, keys, table_values, default):
     pos = np.zeros(len(keys), np.int64)
     hit = np.zeros(len(keys), np.bool_)
+    values = np.full(len(keys) if table_values is not None else 0, default, np.float64)
     if len(table_keys) and len(keys):
-        _gallop(np.ascontiguousarray(table_keys, np.int64), np.ascontiguousarray(keys, np.int64), pos, hit)
-    return pos, hit
+        _gallop(np.ascontiguousarray(table_keys, np.int64), np.ascontiguousarray(keys, np.int64), pos, hit,
+                np.zeros(0) if table_values is None else np.ascontiguousarray(table_values, np.float64),
+                float(default), values)
+    return pos, hit, values

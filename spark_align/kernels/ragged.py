@@ -33,6 +33,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+from numba import njit
 
 NULL_ID = 0
 
@@ -156,14 +157,27 @@ def gen_cells(cond_len: np.ndarray, gen_len: np.ndarray, cell_offsets: np.ndarra
 
 def transpose_grid(src_len: np.ndarray, tgt_len: np.ndarray, grid_offsets: np.ndarray,
                    grid: np.ndarray) -> np.ndarray:
-    """Grid re-laid row-major over (j in 0..m, i in 0..l) for the reverse direction."""
-    rows, cols = src_len + 1, tgt_len + 1
-    n = int(grid_offsets[-1])
-    pair = row_of(grid_offsets)
-    pos = np.arange(n, dtype=np.int64) - grid_offsets[pair]
-    # Element k of the transposed grid sits at (j, i) = divmod(k, l+1) and reads (i, j).
-    j, i = np.divmod(pos, rows[pair])
-    return grid[grid_offsets[pair] + i * cols[pair] + j]
+    """Grid re-laid row-major over (j in 0..m, i in 0..l) for the reverse direction.
+
+    One compiled pass (numba): the reverse direction needs it for every block in every iteration,
+    and the index arithmetic in numpy cost as much as the Model 1 kernel itself.
+    """
+    out = np.empty(len(grid), dtype=grid.dtype)
+    if len(grid):
+        _transpose(np.ascontiguousarray(src_len, np.int64), np.ascontiguousarray(tgt_len, np.int64),
+                   np.ascontiguousarray(grid_offsets, np.int64), np.ascontiguousarray(grid), out)
+    return out
+
+
+@njit(cache=True, nogil=True)
+def _transpose(src_len, tgt_len, grid_offsets, grid, out):  # pragma: no cover - compiled
+    for p in range(len(src_len)):
+        rows = src_len[p] + 1
+        cols = tgt_len[p] + 1
+        base = grid_offsets[p]
+        for j in range(cols):
+            for i in range(rows):
+                out[base + j * rows + i] = grid[base + i * cols + j]
 
 
 def build_block(src_offsets: np.ndarray, src_ids: np.ndarray,
@@ -219,12 +233,3 @@ def positions(table_keys: np.ndarray, keys: np.ndarray) -> tuple[np.ndarray, np.
     from spark_align.kernels.lookup import positions as gallop_positions
 
     return gallop_positions(table_keys, keys)
-
-
-def lookup(table_keys: np.ndarray, table_values: np.ndarray, keys: np.ndarray,
-           default: float) -> np.ndarray:
-    """Values of ``keys`` in a sorted key table; ``default`` where a key is absent."""
-    if len(table_keys) == 0:
-        return np.full(len(keys), default, dtype=np.float64)
-    pos, found = positions(table_keys, keys)
-    return np.where(found, table_values[pos], default)

@@ -45,6 +45,44 @@ def test_local_probs_equal_the_broadcast_lookup():
     assert np.sum(got["forward"] == tables.MIN_PROB) == 80
 
 
+def test_workers_read_the_reducers_files_with_their_buckets(tmp_path):
+    """Tables read from the reducers' files one by one equal the table read whole, and every entry's
+    reducer bucket (known from its file) is the hash the reducers use; a file without the bucket
+    metadata (an older table) makes the reader fall back to the whole read."""
+    from spark_align.engine import estep, mstep
+    from spark_align.kernels import counts
+
+    rng = np.random.default_rng(4)
+    n = 4000
+    dirs = rng.integers(0, 2, n).astype(np.int8)
+    src, tgt = rng.integers(0, 200, n).astype(np.int32), rng.integers(0, 150, n).astype(np.int32)
+    buffer = counts.CountBuffer()
+    mstep.fold_rows(buffer, dirs, src, tgt, *estep.to_fixed(rng.random(n)))
+    by_bucket: dict[int, list] = {}
+    for bucket, data in mstep.payloads(buffer, 3):
+        by_bucket.setdefault(bucket, []).append((bucket, data))
+    lex = tmp_path / "lex"
+    reduce = mstep.make_reducer(str(lex), 3, min_prob=tables.MIN_PROB, prune_below=None)
+    for index in range(3):
+        list(reduce(index, iter(by_bucket.get(index, []))))
+    dirs_ = ("forward", "reverse")
+    seg = tables.read_worker_tables(str(lex), dirs_)
+    whole = tables.tables_from_arrow(tables.read_table_arrow(str(lex)), dirs_)
+    ask = np.unique(np.concatenate([(rng.integers(0, 210, 3000).astype(np.int64) << 32) | rng.integers(0, 160, 3000),
+                                    whole["forward"].keys[::2], whole["reverse"].keys[::3]]))
+    for i, d in enumerate(dirs_):
+        assert np.array_equal(seg[d].keys, whole[d].keys) and np.array_equal(seg[d].probs, whole[d].probs)
+        assert (seg[d].local(ask) > tables.MIN_PROB).sum() > 500
+        assert (i, 3) in seg[d].__dict__["_entry_buckets"]  # known from the files, not hashed
+        assert np.array_equal(seg[d].entry_buckets(i, 3), whole[d].entry_buckets(i, 3))
+
+    part = pq.read_table(lex / mstep.part_name(1))
+    pq.write_table(part.replace_schema_metadata(None), lex / mstep.part_name(1))
+    old = tables.read_worker_tables(str(lex), dirs_)
+    for i, d in enumerate(dirs_):
+        assert "_entry_buckets" not in old[d].__dict__ and np.array_equal(old[d].keys, whole[d].keys)
+
+
 def test_shipping_is_not_part_of_the_resume_key_but_pruning_is():
     c = CorpusConfig(path="x.parquet")
     base = RunConfig(corpus=c).training_key()

@@ -128,6 +128,27 @@ def test_table_aligned_task_counts_equal_the_plain_buffer():
     np.testing.assert_array_equal(b[order], lo_sum)
 
 
+def test_add_at_positions_equals_splitting_and_adding_with_numpy():
+    rng = np.random.default_rng(9)
+    n, size = 3000, 5000
+    pos = rng.permutation(size)[:n]
+    hit, emitted = rng.random(n) < 0.8, rng.random(n) < 0.9
+    values = rng.random(n) * rng.choice([1e-9, 1.0, 1e4], n)
+    acc, touched = np.zeros((size, 2), np.int64), np.zeros(size, bool)
+    acc[:, 0] = 7
+    miss = counts.add_at_positions(pos, hit, emitted, values, acc, touched, hi_scale=HI, lo_scale=LO)
+    got = [acc[:, 0], acc[:, 1], touched]
+    want = [np.full(size, 7, np.int64), np.zeros(size, np.int64), np.zeros(size, bool)]
+    sel = hit & emitted
+    hi, lo = estep.to_fixed(values[sel])
+    want[0][pos[sel]] += hi
+    want[1][pos[sel]] += lo
+    want[2][pos[sel]] = True
+    for a, b in zip(got, want):
+        np.testing.assert_array_equal(a, b)
+    np.testing.assert_array_equal(miss, np.flatnonzero(emitted & ~hit))
+
+
 def test_galloping_positions_equal_searchsorted():
     from spark_align.kernels import lookup
 

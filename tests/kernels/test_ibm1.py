@@ -91,3 +91,15 @@ def test_model_decode_drops_null_and_respects_threshold():
     assert set(range(len(best))) - set(tok_v.tolist()) == set(np.flatnonzero(best == 0).tolist())
     with pytest.raises(ValueError, match="decoding method"):
         model.decode(view, t, {}, method="greedy", threshold=0.0)
+
+
+def test_reverse_grid_is_each_pairs_grid_transposed():
+    from spark_align.kernels import ragged
+
+    block = make_block(random_corpus(np.random.default_rng(4), 40, max_len=9, n_src_words=12, n_tgt_words=15))
+    src_len, tgt_len = ragged.lengths(block.src_offsets), ragged.lengths(block.tgt_offsets)
+    got = ragged.transpose_grid(src_len, tgt_len, block.grid_offsets, block.grid)
+    for p in range(block.n_pairs):
+        a, b = block.grid_offsets[p], block.grid_offsets[p + 1]
+        want = block.grid[a:b].reshape(src_len[p] + 1, tgt_len[p] + 1).T.ravel()
+        np.testing.assert_array_equal(got[a:b], want)
