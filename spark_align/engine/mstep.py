@@ -102,13 +102,15 @@ class TaskCounts:
         for bucket, part in _split_arrays(*self.buffer.result(), n_buckets):
             by_bucket.setdefault(bucket, []).append(part)
         for d, (acc, touched, table_keys) in sorted(self.acc.items()):
-            # Cost follows the entries this task touched, not the table: one scan of a byte per entry,
-            # then a radix sort of the touched entries' buckets.
-            nz = np.flatnonzero(touched)
+            # Cost follows the table (a gather of one byte per entry) and the entries this task touched;
+            # the grouping by bucket is the table's, computed once per Python worker.
+            order, bounds = self.tables[DIRS[d]].bucket_order(d, n_buckets)
+            touched_in_order = touched[order]
             shift = (np.int64(d) << 62) + (np.int64(2) << 32)  # table key (src << 32 | tgt) -> row key
-            for b, part in _groups(self.tables[DIRS[d]].entry_buckets(d, n_buckets)[nz]):
-                idx = nz[part]
-                by_bucket.setdefault(b, []).append((table_keys[idx] + shift, acc[idx, 0], acc[idx, 1]))
+            for b in range(n_buckets):
+                idx = order[bounds[b] + np.flatnonzero(touched_in_order[bounds[b]:bounds[b + 1]])]
+                if len(idx):
+                    by_bucket.setdefault(b, []).append((table_keys[idx] + shift, acc[idx, 0], acc[idx, 1]))
         for bucket in sorted(by_bucket):
             keys, hi, lo = (np.concatenate(x) for x in zip(*by_bucket[bucket]))
             yield bucket, encode(keys, hi, lo)
