@@ -19,10 +19,15 @@ table, which is never shipped per entry):
   directions and all tasks (``metrics[dir].kernel_seconds`` of the manifest). It counts
   everything else: Arrow (de)serialisation, the table lookup, emitting and shuffling counts,
   the M-step, the checkpoint write, scheduling, and idle cores;
-  It is split into: ``E-step tasks`` (task wall time minus kernel time: reading blocks, the
-  table lookup, folding and serialising counts; the lookup alone is also shown, and
-  ``lookup_vs_kernel`` in the JSON), ``reducers`` (summing, normalising and writing
-  the table) and ``rest`` (Spark scheduling and shuffle, the driver, and idle cores);
+  It is split into shares of the same core time: the ``lookup`` (finding each block dictionary's
+  entries in the table), ``accumulation`` (adding counts into the task's table-aligned
+  accumulators), ``table load`` (each Python worker reading the table), ``block reads``,
+  ``output records`` (grouping and compressing a task's counts for the shuffle), ``other E-step``
+  (the rest of the E-step tasks' wall time: block views, the reverse grid, Python),
+  ``reducers`` (summing, normalising and writing the table) and ``rest`` (Spark scheduling and
+  shuffle, the driver, and idle cores);
+* ``outside_compute``: the same with the lookup and the accumulation counted as E-step
+  computation: ``1 - (kernel + lookup + accumulation seconds) / (iteration seconds x cores)``;
 * ``exponent``: the slope of log(iteration seconds) against log(pairs) over the sizes run;
 * ``task_rss_mb``: peak resident memory of the E-step's Python workers (``ru_maxrss`` noted by
   each E-step task when ``SPARK_ALIGN_BENCH_TASK_MEMORY_DIR`` is set; max over tasks);
@@ -49,6 +54,8 @@ import time
 from pathlib import Path
 
 HERE = Path(__file__).resolve().parent
+# Parts of an E-step task's time recorded in the manifests (``engine.estep``, scalars 4-8).
+PARTS = ("lookup", "accumulate", "table_load", "block_read", "payload")
 sys.path.insert(0, str(HERE.parent))
 
 
@@ -106,7 +113,7 @@ def _child_train(args) -> None:
                      "kernel_seconds": sum(m["metrics"][d]["kernel_seconds"] for d in dirs),
                      # the E-step tasks' wall time counts both directions once (it is folded per direction)
                      "estep_task_seconds": m["metrics"][dirs[0]].get("estep_task_seconds", 0.0),
-                     "lookup_seconds": m["metrics"][dirs[0]].get("lookup_seconds", 0.0),
+                     **{f"{part}_seconds": m["metrics"][dirs[0]].get(f"{part}_seconds", 0.0) for part in PARTS},
                      "reduce_task_seconds": m["metrics"][dirs[0]].get("reduce_task_seconds", 0.0),
                      "links": sum(m["metrics"][d]["links"] for d in dirs),
                      "shipping": m["metrics"][dirs[0]].get("shipping"),
@@ -146,27 +153,33 @@ def run_config(work: Path, pairs: int, *, vocab: int, shipping: str, block_size:
         links = statistics.median(r["links"] for r in later)
         task = statistics.median(r["estep_task_seconds"] for r in later)
         reduce = statistics.median(r["reduce_task_seconds"] for r in later)
-        lookup = statistics.median(r["lookup_seconds"] for r in later)
+        parts = {part: statistics.median(r[f"{part}_seconds"] for r in later) for part in PARTS}
         core_s = secs * cores
+        compute = kernel + parts["lookup"] + parts["accumulate"]
         result.update(iter_s=secs, kernel_s=kernel, links=links, mlinks_core=links / kernel / 1e6,
-                      outside=1.0 - kernel / core_s, shipping=later[-1]["shipping"],
-                      table_entries=later[-1]["table_entries"],
-                      # where the core time outside the kernels went (shares of cores x iteration seconds)
-                      estep_other=(task - kernel) / core_s if task else float("nan"),
-                      lookup_share=lookup / core_s, lookup_vs_kernel=lookup / kernel,
+                      outside=1.0 - kernel / core_s, outside_compute=1.0 - compute / core_s,
+                      shipping=later[-1]["shipping"], table_entries=later[-1]["table_entries"],
+                      lookup_vs_kernel=parts["lookup"] / kernel,
+                      # where the core time went (shares of cores x iteration seconds)
+                      **{f"{part}_share": v / core_s for part, v in parts.items()},
+                      estep_other=(task - kernel - sum(parts.values())) / core_s if task else float("nan"),
                       reduce_share=reduce / core_s, rest_share=1.0 - max(task, kernel) / core_s - reduce / core_s)
     subprocess.run(["rm", "-rf", str(run), memdir])
     return result
 
 
 def fmt(r: dict) -> str:
+    def pct(key: str) -> str:
+        return f"{100 * r.get(key, float('nan')):4.1f}%"
+
     return (f"pairs {r['pairs']:>8d} vocab {r['vocab']:>6d} block {r['block_size']:>5d} {r.get('shipping', '?'):9s} "
             f"table {r.get('table_entries') or 0:>9d}  iter {r.get('iter_s', float('nan')):7.2f} s  "
-            f"kernel {r.get('mlinks_core', float('nan')):6.1f} M links/s/core  "
-            f"outside {100 * r.get('outside', float('nan')):5.1f}% (E-step tasks {100 * r.get('estep_other', float('nan')):4.1f}%"
-            f" of which lookup {100 * r.get('lookup_share', float('nan')):4.1f}%"
-            f" reducers {100 * r.get('reduce_share', float('nan')):4.1f}% rest {100 * r.get('rest_share', float('nan')):4.1f}%)"
-            f"  task RSS {r['task_rss_mb']:6.0f} MB  "
+            f"kernel {r.get('mlinks_core', float('nan')):6.1f} M links/s/core\n"
+            f"    outside the kernels {pct('outside')}, outside kernels + lookup + accumulation {pct('outside_compute')}"
+            f"  (lookup {pct('lookup_share')}, accumulation {pct('accumulate_share')}, table load"
+            f" {pct('table_load_share')}, block reads {pct('block_read_share')}, output records {pct('payload_share')},"
+            f" other E-step {pct('estep_other')}, reducers {pct('reduce_share')}, rest {pct('rest_share')})\n"
+            f"    task RSS {r['task_rss_mb']:6.0f} MB  "
             f"driver RSS {r['driver_rss_mb']:5.0f} MB  (load {r['load_avg']:.1f}, total {r['total_s']:.0f} s)")
 
 

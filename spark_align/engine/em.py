@@ -151,6 +151,10 @@ class Trainer:
                           "kernel_seconds": sums[d]["scalar"].get(1, 0.0), "links": sums[d]["scalar"].get(2, 0.0),
                           "estep_task_seconds": sums[d]["scalar"].get(3, 0.0),
                           "lookup_seconds": sums[d]["scalar"].get(4, 0.0),
+                          "accumulate_seconds": sums[d]["scalar"].get(5, 0.0),
+                          "table_load_seconds": sums[d]["scalar"].get(6, 0.0),
+                          "block_read_seconds": sums[d]["scalar"].get(7, 0.0),
+                          "payload_seconds": sums[d]["scalar"].get(8, 0.0),
                           "reduce_task_seconds": float(sum(s["seconds"] for s in summaries)),
                           "job_seconds": job_seconds, "reducers": n_parts,
                           "shipping": path, "table_entries": n_entries, "new_table_entries": sums[d]["entries"]}

@@ -8,7 +8,10 @@ direction and emits rows ``(dir, src, tgt, hi, lo)``:
 * ``src == -1``: entry ``tgt`` of the model's dense statistics vector;
 * ``src == -2``: scalars (``tgt == 0``: log-likelihood; ``tgt == 1``: seconds spent in the
   model kernel, for the share-outside-the-kernel figure; ``tgt == 2``: links processed;
-  whole-table path only, per task: ``tgt == 3`` task seconds, ``tgt == 4`` table-lookup seconds).
+  whole-table path only, per task: ``tgt == 3`` task seconds, of which ``tgt == 4`` finding the
+  blocks' entries in the table (the lookup), ``5`` adding counts into the task's accumulators,
+  ``6`` loading the table (first task of a Python worker per iteration), ``7`` reading blocks and
+  ``8`` preparing the task's output records).
 
 Counts leave the task as 64-bit fixed point in two parts (``v = hi / 2^20 +
 lo / 2^50``, error below 1e-15 per value) and are summed as integers by
@@ -83,27 +86,38 @@ def make_estep(model, directions: tuple[str, ...], tables_src, dense: dict[str, 
         _maybe_fail()
         started = time.perf_counter()
         tables = tables_src.value
+        load_seconds = time.perf_counter() - started
         fs, _root = fsspec.core.url_to_fs(blocks_url)
         task = mstep.TaskCounts(tables)
-        lookup_seconds = 0.0
+        lookup_seconds = add_seconds = read_seconds = 0.0
         for path, row_group in units:
-            for batch in mstep.read_unit(fs, path, row_group):
-                for _block_id, _rows, block in blocks_from_batch(batch):
-                    looked_up = time.perf_counter()
-                    found, t_locals = {}, {}
-                    for d in directions:
-                        found[d], t_locals[d] = tables[d].find(block.dict_keys)
-                    lookup_seconds += time.perf_counter() - looked_up
-                    for result in block_results(model, directions, block, t_locals, dense):
-                        task.add(block.dict_keys, found[DIRS[result[0]]], *result)
+            read_started = time.perf_counter()
+            blocks = [block for batch in mstep.read_unit(fs, path, row_group)
+                      for _block_id, _rows, block in blocks_from_batch(batch)]
+            read_seconds += time.perf_counter() - read_started
+            for block in blocks:
+                looked_up = time.perf_counter()
+                found, t_locals = {}, {}
+                for d in directions:
+                    found[d], t_locals[d] = tables[d].find(block.dict_keys)
+                lookup_seconds += time.perf_counter() - looked_up
+                for result in block_results(model, directions, block, t_locals, dense):
+                    added = time.perf_counter()
+                    task.add(block.dict_keys, found[DIRS[result[0]]], *result)
+                    add_seconds += time.perf_counter() - added
+        payload_started = time.perf_counter()
         records = list(task.payloads(n_buckets))
+        payload_seconds = time.perf_counter() - payload_started
         note_task_memory("broadcast")
-        # Scalars 3 and 4, the same under every direction, in a record of their own: the task's wall time
-        # (reading, table lookups, kernels, folding, preparing its output) and its table-lookup time.
-        values = np.array([time.perf_counter() - started, lookup_seconds])
+        # Scalars 3-8, the same under every direction, in a record of their own: the task's wall time
+        # (reading, table lookups, kernels, folding, preparing its output) and the parts of it named in
+        # the module docstring.
+        values = np.array([time.perf_counter() - started, lookup_seconds, add_seconds, load_seconds, read_seconds,
+                           payload_seconds])
         timing = mstep.TaskCounts(tables)
         for direction in directions:
-            timing.add_rows(DIRS.index(direction), np.full(2, SCALAR, np.int32), np.array([3, 4], np.int32), values)
+            timing.add_rows(DIRS.index(direction), np.full(len(values), SCALAR, np.int32),
+                            np.arange(3, 3 + len(values), dtype=np.int32), values)
         yield from records
         yield from timing.payloads(n_buckets)
 
