@@ -18,6 +18,7 @@ import pyarrow as pa
 from spark_align.engine import faults
 from spark_align.engine.ingest import ROW, blocks_from_batch
 from spark_align.kernels import ragged
+from spark_align.models.base import decode_all
 from spark_align.store import FORMAT_VERSION, RunStore
 
 LINK_TYPE = pa.list_(pa.struct([("source", pa.int32()), ("target", pa.int32()), ("posterior", pa.float64())]))
@@ -34,7 +35,10 @@ def directional_links(block: ragged.Block, direction: str, token, cond_pos, post
     else:
         pair = ragged.row_of(block.src_offsets)[token]
         src_i, tgt_j = token - block.src_offsets[pair], cond_pos - 1
-    order = np.lexsort((tgt_j, src_i, pair))
+    key = _link_key(pair, src_i, tgt_j)
+    if len(key) < 2 or bool(np.all(key[1:] > key[:-1])):  # the reverse direction lists links in order
+        return pair, src_i, tgt_j, post
+    order = np.argsort(key)  # keys are unique: one int64 sort instead of a three-key lexsort
     return pair[order], src_i[order], tgt_j[order], post[order]
 
 
@@ -107,13 +111,13 @@ def make_decoder(model, directions: tuple[str, ...], tables_bc, dense: dict, *, 
                 for direction in directions:
                     view = block.view(direction)
                     t_local = tables[direction].local(block.dict_keys)
-                    token, cond_pos, post = model.decode(view, t_local, dense[direction],
-                                                         method=method, threshold=threshold)
-                    links[direction] = directional_links(block, direction, token, cond_pos, post)
-                    if len(directions) == 2:
-                        every[direction] = directional_links(block, direction, *model.decode(
-                            view, t_local, dense[direction], method="posterior", threshold=ALL_LINKS_THRESHOLD))
-                    scores[direction] = model.pair_loglik(view, t_local, dense[direction]) / np.maximum(view.gen_len, 1)
+                    chosen, all_links, loglik = decode_all(
+                        model, view, t_local, dense[direction], method=method, threshold=threshold,
+                        every_threshold=ALL_LINKS_THRESHOLD if len(directions) == 2 else None)
+                    links[direction] = directional_links(block, direction, *chosen)
+                    if all_links is not None:
+                        every[direction] = directional_links(block, direction, *all_links)
+                    scores[direction] = loglik / np.maximum(view.gen_len, 1)
                 if len(directions) == 2:
                     sym = combine(block, links["forward"], links["reverse"], every["forward"], every["reverse"],
                                   symmetrization, threshold)

@@ -62,18 +62,23 @@ def _e_step_compiled(cond_len, gen_len, cell_offsets, cells, t, counts):  # prag
 
 def posteriors(view: View, t: np.ndarray, gc: GenCells | None = None) -> tuple[GenCells, np.ndarray]:
     """Link posteriors, one per link of ``gc`` (they sum to 1 per generated token)."""
-    gc, p = link_scores(view, t, gc)
-    denom = np.bincount(gc.token, weights=p, minlength=gc.n_tokens)
-    return gc, p / denom[gc.token]
+    gc, post, _ = posteriors_and_loglik(view, t, gc)
+    return gc, post
 
 
 def pair_loglik(view: View, t: np.ndarray, gc: GenCells | None = None) -> np.ndarray:
     """log p(gen sentence | cond sentence) of every pair, float64 (n_pairs,)."""
+    return posteriors_and_loglik(view, t, gc)[2]
+
+
+def posteriors_and_loglik(view: View, t: np.ndarray, gc: GenCells | None = None
+                          ) -> tuple[GenCells, np.ndarray, np.ndarray]:
+    """:func:`posteriors` and :func:`pair_loglik` from one pass (they share each token's denominator)."""
     gc, p = link_scores(view, t, gc)
     denom = np.bincount(gc.token, weights=p, minlength=gc.n_tokens)
     token_pair = np.repeat(np.arange(view.n_pairs), view.gen_len)
     per_pair = np.bincount(token_pair, weights=np.log(denom), minlength=view.n_pairs)
-    return per_pair - view.gen_len * np.log(view.cond_len + 1.0)
+    return gc, p / denom[gc.token], per_pair - view.gen_len * np.log(view.cond_len + 1.0)
 
 
 def argmax_per_token(gc: GenCells, score: np.ndarray) -> np.ndarray:

@@ -20,7 +20,7 @@ from typing import ClassVar, Protocol
 
 import numpy as np
 
-from spark_align.kernels.ragged import View
+from spark_align.kernels.ragged import GenCells, View
 
 Dense = dict[str, np.ndarray]
 
@@ -55,3 +55,46 @@ class AlignmentModel(Protocol):
 
     def pair_loglik(self, view: View, t: np.ndarray, dense: Dense) -> np.ndarray:
         """log p(gen sentence | cond sentence) per pair, float64 (n_pairs,)."""
+
+    def decode_pass(self, view: View, t: np.ndarray, dense: Dense, *, method: str
+                    ) -> tuple[GenCells, np.ndarray, np.ndarray, np.ndarray | None]:
+        """What :meth:`decode` and :func:`decode_all` choose links from, computed once:
+        (links ``gc``, posterior per link, best cond position per token under ``method``, and the
+        per-pair log-likelihood when the pass yields it for free, else None)."""
+
+
+def select_links(token: np.ndarray, cond_pos: np.ndarray, post: np.ndarray, best_pos: np.ndarray,
+                 *, method: str, threshold: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Pick links from token-major link posteriors (shared by models whose links are listed per token).
+
+    ``best_pos`` is the Viterbi position per token (0 = NULL). Returns
+    (token, cond_pos, posterior) of the chosen non-NULL links.
+    """
+    if method == "viterbi":
+        keep = (cond_pos == best_pos[token]) & (cond_pos > 0)
+    elif method == "posterior":
+        keep = (post >= threshold) & (cond_pos > 0)
+    else:
+        raise ValueError(f"decoding method must be 'viterbi' or 'posterior', not {method!r}")
+    return token[keep], cond_pos[keep], post[keep]
+
+
+def decode(model, view: View, t: np.ndarray, dense: Dense, *, method: str, threshold: float):
+    """:meth:`AlignmentModel.decode` for a model that implements :meth:`~AlignmentModel.decode_pass`."""
+    gc, post, best, _ = model.decode_pass(view, t, dense, method=method)
+    return select_links(gc.token, gc.cond_pos, post, best, method=method, threshold=threshold)
+
+
+def decode_all(model, view: View, t: np.ndarray, dense: Dense, *, method: str, threshold: float,
+               every_threshold: float | None):
+    """Everything the output needs from one view, from one pass of the model:
+    (chosen links as :meth:`~AlignmentModel.decode` returns them, every link whose posterior reaches
+    ``every_threshold`` (None: not wanted), per-pair log-likelihood).
+
+    Decoding, posterior listing and scoring separately ran the model three times per view (three
+    forward-backward passes for the HMM)."""
+    gc, post, best, loglik = model.decode_pass(view, t, dense, method=method)
+    chosen = select_links(gc.token, gc.cond_pos, post, best, method=method, threshold=threshold)
+    every = None if every_threshold is None else select_links(gc.token, gc.cond_pos, post, best,
+                                                              method="posterior", threshold=every_threshold)
+    return chosen, every, (model.pair_loglik(view, t, dense) if loglik is None else loglik)

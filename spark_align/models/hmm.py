@@ -7,8 +7,8 @@ import numpy as np
 
 from spark_align.kernels import hmm
 from spark_align.kernels.ragged import View
+from spark_align.models import base
 from spark_align.models.base import Dense
-from spark_align.models.ibm1 import select_links
 from spark_align.models.ibm2 import check_int, check_options, check_real
 
 
@@ -48,13 +48,16 @@ class HMM:
 
     def decode(self, view: View, t: np.ndarray, dense: Dense, *, method: str,
                threshold: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        gc, post, _, _ = hmm.forward_backward(view, t, dense["jump"], self.p_null, self.max_jump,
-                                              want_stats=False)
+        return base.decode(self, view, t, dense, method=method, threshold=threshold)
+
+    def decode_pass(self, view: View, t: np.ndarray, dense: Dense, *, method: str):
+        gc, post, _, loglik = hmm.forward_backward(view, t, dense["jump"], self.p_null, self.max_jump,
+                                                   want_stats=False)
         if method == "viterbi":
             best = hmm.viterbi(view, t, dense["jump"], self.p_null, self.max_jump, gc)
         else:
             best = hmm.posterior_best(gc, post)
-        return select_links(gc.token, gc.cond_pos, post, best, method=method, threshold=threshold)
+        return gc, post, best, loglik
 
     def pair_loglik(self, view: View, t: np.ndarray, dense: Dense) -> np.ndarray:
         return hmm.pair_loglik(view, t, dense["jump"], self.p_null, self.max_jump)

@@ -7,6 +7,7 @@ import numpy as np
 
 from spark_align.kernels import ibm1
 from spark_align.kernels.ragged import View
+from spark_align.models import base
 from spark_align.models.base import Dense
 
 
@@ -35,25 +36,12 @@ class IBM1:
 
     def decode(self, view: View, t: np.ndarray, dense: Dense, *, method: str,
                threshold: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        gc, post = ibm1.posteriors(view, t)
-        return select_links(gc.token, gc.cond_pos, post, ibm1.argmax_per_token(gc, post),
-                            method=method, threshold=threshold)
+        return base.decode(self, view, t, dense, method=method, threshold=threshold)
+
+    def decode_pass(self, view: View, t: np.ndarray, dense: Dense, *, method: str):
+        gc, post, loglik = ibm1.posteriors_and_loglik(view, t)
+        return gc, post, ibm1.argmax_per_token(gc, post), loglik  # links are independent: Viterbi = argmax
 
     def pair_loglik(self, view: View, t: np.ndarray, dense: Dense) -> np.ndarray:
         return ibm1.pair_loglik(view, t)
 
-
-def select_links(token: np.ndarray, cond_pos: np.ndarray, post: np.ndarray, best_pos: np.ndarray,
-                 *, method: str, threshold: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Pick links from token-major link posteriors (shared by models whose links are listed per token).
-
-    ``best_pos`` is the Viterbi position per token (0 = NULL). Returns
-    (token, cond_pos, posterior) of the chosen non-NULL links.
-    """
-    if method == "viterbi":
-        keep = (cond_pos == best_pos[token]) & (cond_pos > 0)
-    elif method == "posterior":
-        keep = (post >= threshold) & (cond_pos > 0)
-    else:
-        raise ValueError(f"decoding method must be 'viterbi' or 'posterior', not {method!r}")
-    return token[keep], cond_pos[keep], post[keep]

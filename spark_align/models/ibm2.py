@@ -12,8 +12,8 @@ import numpy as np
 
 from spark_align.kernels import ibm2
 from spark_align.kernels.ragged import View
+from spark_align.models import base
 from spark_align.models.base import Dense
-from spark_align.models.ibm1 import select_links
 
 
 def check_options(model: str, options: dict, defaults: dict) -> dict:
@@ -76,9 +76,11 @@ class IBM2:
 
     def decode(self, view: View, t: np.ndarray, dense: Dense, *, method: str,
                threshold: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        return base.decode(self, view, t, dense, method=method, threshold=threshold)
+
+    def decode_pass(self, view: View, t: np.ndarray, dense: Dense, *, method: str):
         gc, post = ibm2.posteriors(view, t, dense["align_table"], self.cap)
-        best, _ = ibm2.viterbi_from_posteriors(gc, post)
-        return select_links(gc.token, gc.cond_pos, post, best, method=method, threshold=threshold)
+        return gc, post, ibm2.viterbi_from_posteriors(gc, post)[0], None
 
     def pair_loglik(self, view: View, t: np.ndarray, dense: Dense) -> np.ndarray:
         return ibm2.pair_loglik(view, t, dense["align_table"], self.cap)
@@ -129,9 +131,11 @@ class IBM2Diag:
 
     def decode(self, view: View, t: np.ndarray, dense: Dense, *, method: str,
                threshold: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        return base.decode(self, view, t, dense, method=method, threshold=threshold)
+
+    def decode_pass(self, view: View, t: np.ndarray, dense: Dense, *, method: str):
         gc, post = ibm2.diag_posteriors(view, t, self.p_null, float(dense["lambda"][0]))
-        best, _ = ibm2.viterbi_from_posteriors(gc, post)
-        return select_links(gc.token, gc.cond_pos, post, best, method=method, threshold=threshold)
+        return gc, post, ibm2.viterbi_from_posteriors(gc, post)[0], None
 
     def pair_loglik(self, view: View, t: np.ndarray, dense: Dense) -> np.ndarray:
         return ibm2.diag_pair_loglik(view, t, self.p_null, float(dense["lambda"][0]))
