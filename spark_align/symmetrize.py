@@ -1,6 +1,6 @@
 """Combine the two directional alignments of each sentence pair into one.
 
-Pure Python/numpy (never imports pyspark); the engine's output step calls the
+numpy and numba (never imports pyspark); the engine's output step calls the
 batch functions inside Spark tasks on blocks of sentence pairs.
 
 Conventions
@@ -43,9 +43,9 @@ choice.) The pseudocode and neighbour order are from memory of Koehn's
 
 Speed: only union links outside the intersection (*candidates*) can ever be
 added, and only kept links next to a candidate can add one, so each pass visits
-just those; a pair whose two directions agree costs one set comparison. The
-batch functions build the intersection and union of a whole block with numpy
-and fall back to Python per pair only when the pair has candidates.
+just those. The batch functions build the intersection and union of a whole
+block with numpy; pairs whose two directions disagree are grown by one compiled
+loop over small per-pair grids (about 40 us per pair in Python sets before).
 
 Posterior combination
 ---------------------
@@ -55,11 +55,11 @@ average is at least ``threshold``.
 """
 from __future__ import annotations
 
-import heapq
 from collections.abc import Iterable
 from typing import NamedTuple
 
 import numpy as np
+from numba import njit
 
 from spark_align.errors import InputError
 
@@ -157,65 +157,96 @@ def _pair_lengths(n_src, n_tgt) -> tuple[np.ndarray, np.ndarray]:
 
 
 # ---------------------------------------------------------------------------
-# One sentence pair
+# Growing, compiled (numba): every pair of a batch on small dense grids
 # ---------------------------------------------------------------------------
 
-def _grow_diag(kept: set[Link], candidates: set[Link], src_aligned: list[bool], tgt_aligned: list[bool]) -> None:
-    """Grow ``kept`` in place, giving the same result as the published row-major passes.
+_FWD, _REV, _KEPT = 1, 2, 4
+_FINAL_MODE = {"grow-diag": 0, "grow-diag-final": 1, "grow-diag-final-and": 2}
+_DI = np.array([d[0] for d in _NEIGHBOURS], np.int64)
+_DJ = np.array([d[1] for d in _NEIGHBOURS], np.int64)
 
-    A pass of the pseudocode visits every kept link. Visiting one that has no
-    candidate neighbour changes nothing, and once a link has been visited it can
-    never add anything later: each candidate neighbour was then either added or
-    blocked, and blocking is permanent because words only become aligned. So
-    pass 1 visits the kept links next to a candidate, in row-major order; a link
-    added ahead of the scan position is visited in the same pass (the scan
-    reaches it), and one added behind it waits for the next pass, which visits
-    only such links. Growing stops when a pass leaves nothing for the next.
+
+@njit(cache=True, nogil=True)
+def _grow_pairs(pairs, fwd_keys, fwd_start, rev_keys, rev_start, n_src, n_tgt, n_tgt_max, cell_size,
+                final_mode, di, dj, out):  # pragma: no cover - compiled
+    """Grow (and finish) the listed pairs; writes the kept cells' keys to ``out`` row-major per pair.
+
+    Per pair: a grid of flags (forward link, reverse link, kept). Kept starts as the intersection;
+    candidates are union cells not kept. A pass visits pending kept cells in row-major order, tries
+    their neighbours in the fixed order and keeps a candidate whose source or target word is still
+    unaligned. A cell kept ahead of the scan is visited in the same pass, one behind it in the next
+    pass (exactly what the published row-major passes do, visiting only the cells that can add a
+    link). Then the final steps scan forward links, then reverse links, row-major.
     """
-    queue = sorted({(i - di, j - dj) for i, j in candidates for di, dj in _NEIGHBOURS} & kept)
-    while queue:
-        behind = []
-        while queue:
-            i, j = point = heapq.heappop(queue)
-            for di, dj in _NEIGHBOURS:
-                new = (i + di, j + dj)
-                if new in candidates and (not src_aligned[new[0]] or not tgt_aligned[new[1]]):
-                    kept.add(new)
-                    candidates.discard(new)
-                    src_aligned[new[0]] = tgt_aligned[new[1]] = True
-                    if new > point:
-                        heapq.heappush(queue, new)
-                    else:
-                        behind.append(new)
-        queue = sorted(behind)
-
-
-def _final(kept: set[Link], links: set[Link], src_aligned: list[bool], tgt_aligned: list[bool], both: bool) -> None:
-    """Add links of one direction whose words are unaligned (both words if ``both``, else either)."""
-    for i, j in sorted(links - kept):
-        free = (not src_aligned[i] and not tgt_aligned[j]) if both else (not src_aligned[i] or not tgt_aligned[j])
-        if free:
-            kept.add((i, j))
-            src_aligned[i] = tgt_aligned[j] = True
-
-
-def _symmetrize_sets(fwd: set[Link], rev: set[Link], n_src: int, n_tgt: int, method: str) -> set[Link]:
-    kept = fwd & rev
-    if method == "intersection":
-        return kept
-    union = fwd | rev
-    if method == "union" or len(kept) == len(union):
-        return union
-    src_aligned = [False] * n_src
-    tgt_aligned = [False] * n_tgt
-    for i, j in kept:
-        src_aligned[i] = tgt_aligned[j] = True
-    _grow_diag(kept, union - kept, src_aligned, tgt_aligned)
-    if method != "grow-diag":
-        both = method == "grow-diag-final-and"
-        _final(kept, fwd, src_aligned, tgt_aligned, both)
-        _final(kept, rev, src_aligned, tgt_aligned, both)
-    return kept
+    n_out = 0
+    for q in range(len(pairs)):
+        p = pairs[q]
+        n_i, n_j = n_src[p], n_tgt[p]
+        base = p * cell_size
+        grid = np.zeros((n_i, n_j), np.uint8)
+        for k in range(fwd_start[p], fwd_start[p + 1]):
+            c = fwd_keys[k] - base
+            grid[c // n_tgt_max, c % n_tgt_max] |= 1
+        for k in range(rev_start[p], rev_start[p + 1]):
+            c = rev_keys[k] - base
+            grid[c // n_tgt_max, c % n_tgt_max] |= 2
+        src_al = np.zeros(n_i, np.bool_)
+        tgt_al = np.zeros(n_j, np.bool_)
+        for i in range(n_i):
+            for j in range(n_j):
+                if grid[i, j] == 3:
+                    grid[i, j] = 7
+                    src_al[i] = True
+                    tgt_al[j] = True
+        pending = np.zeros((n_i, n_j), np.bool_)
+        for i in range(n_i):
+            for j in range(n_j):
+                if grid[i, j] & 4:
+                    for d in range(8):
+                        a, b = i + di[d], j + dj[d]
+                        if 0 <= a < n_i and 0 <= b < n_j and grid[a, b] != 0 and not grid[a, b] & 4:
+                            pending[i, j] = True
+                            break
+        again = True
+        while again:
+            again = False
+            behind = np.zeros((n_i, n_j), np.bool_)
+            for i in range(n_i):
+                for j in range(n_j):
+                    if not pending[i, j]:
+                        continue
+                    for d in range(8):
+                        a, b = i + di[d], j + dj[d]
+                        if (0 <= a < n_i and 0 <= b < n_j and grid[a, b] != 0 and not grid[a, b] & 4
+                                and (not src_al[a] or not tgt_al[b])):
+                            grid[a, b] |= 4
+                            src_al[a] = True
+                            tgt_al[b] = True
+                            if a > i or (a == i and b > j):
+                                pending[a, b] = True  # ahead of the scan: visited in this pass
+                            else:
+                                behind[a, b] = True
+                                again = True
+            pending = behind
+        if final_mode:
+            for bit in (1, 2):
+                for i in range(n_i):
+                    for j in range(n_j):
+                        if grid[i, j] & bit and not grid[i, j] & 4:
+                            if final_mode == 2:
+                                free = not src_al[i] and not tgt_al[j]
+                            else:
+                                free = not src_al[i] or not tgt_al[j]
+                            if free:
+                                grid[i, j] |= 4
+                                src_al[i] = True
+                                tgt_al[j] = True
+        for i in range(n_i):
+            for j in range(n_j):
+                if grid[i, j] & 4:
+                    out[n_out] = base + i * n_tgt_max + j
+                    n_out += 1
+    return n_out
 
 
 def symmetrize(forward: Iterable[Link], reverse: Iterable[Link], *, n_src: int, n_tgt: int,
@@ -245,9 +276,15 @@ def symmetrize(forward: Iterable[Link], reverse: Iterable[Link], *, n_src: int, 
     """
     _check_method(method)
     _check_lengths(n_src, n_tgt, "sentence pair")
-    fwd = _link_set(forward, n_src, n_tgt, "forward alignment")
-    rev = _link_set(reverse, n_src, n_tgt, "reverse alignment")
-    return sorted(_symmetrize_sets(fwd, rev, n_src, n_tgt, method))
+    fwd = sorted(_link_set(forward, n_src, n_tgt, "forward alignment"))
+    rev = sorted(_link_set(reverse, n_src, n_tgt, "reverse alignment"))
+
+    def csr(links):
+        return (np.array([0, len(links)], np.int64), np.array([i for i, _ in links], np.int32),
+                np.array([j for _, j in links], np.int32))
+
+    got = symmetrize_batch(csr(fwd), csr(rev), n_src=np.array([n_src]), n_tgt=np.array([n_tgt]), method=method)
+    return list(zip(got.src_index.tolist(), got.tgt_index.tolist()))
 
 
 # ---------------------------------------------------------------------------
@@ -323,14 +360,10 @@ def symmetrize_batch(forward: LinkArrays, reverse: LinkArrays, *, n_src: np.ndar
     out_keys = [union_keys[np.isin(union_keys // cell_size, np.flatnonzero(n_union == n_inter))]]
     fwd_start = np.searchsorted(fwd_keys // cell_size, np.arange(n_pairs + 1))
     rev_start = np.searchsorted(rev_keys // cell_size, np.arange(n_pairs + 1))
-    for p in np.flatnonzero(n_union != n_inter).tolist():
-        base = p * cell_size
-        fwd_cells = (fwd_keys[fwd_start[p]:fwd_start[p + 1]] - base).tolist()
-        rev_cells = (rev_keys[rev_start[p]:rev_start[p + 1]] - base).tolist()
-        fwd = {divmod(c, n_tgt_max) for c in fwd_cells}
-        rev = {divmod(c, n_tgt_max) for c in rev_cells}
-        kept = _symmetrize_sets(fwd, rev, int(n_src[p]), int(n_tgt[p]), method)
-        out_keys.append(np.fromiter((base + i * n_tgt_max + j for i, j in kept), dtype=np.int64, count=len(kept)))
+    grown = np.empty(len(union_keys), np.int64)  # kept links are union links
+    n = _grow_pairs(np.flatnonzero(n_union != n_inter).astype(np.int64), fwd_keys, fwd_start, rev_keys, rev_start,
+                    n_src, n_tgt, n_tgt_max, cell_size, _FINAL_MODE[method], _DI, _DJ, grown)
+    out_keys.append(grown[:n])
     return _keys_to_links(np.sort(np.concatenate(out_keys)), n_pairs, n_src_max, n_tgt_max)
 
 
