@@ -233,8 +233,7 @@ def align_corpus(spark, run_dir: str, corpus: CorpusConfig, out_dir: str, *, che
         decoder = output.make_decoder(model, cfg.direction_list, tables_bc, dense, method=cfg.decoding,
                                       threshold=cfg.posterior_threshold, symmetrization=cfg.symmetrization)
         manifest = output.write_output(
-            spark, out, spark.read.parquet(out.spark_path("encoded", "blocks")), decoder,
-            checkpoint=ckpt.name, directions=cfg.direction_list,
+            spark, out, decoder, checkpoint=ckpt.name, directions=cfg.direction_list,
             extra={"kind": "align", "run": run.store.url, "stage_index": ckpt.stage_index,
                    "config": cfg.to_dict(), "n_input_rows": n_rows, "unknown_tokens": unknown})
     finally:

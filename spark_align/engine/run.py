@@ -182,7 +182,7 @@ def train(spark, cfg: RunConfig, run_dir: str, *, resume: bool = False, resume_f
         decoder = output.make_decoder(model, cfg.direction_list, tables_bc, state.dense, method=cfg.decoding,
                                       threshold=cfg.posterior_threshold, symmetrization=cfg.symmetrization)
         manifest = output.write_output(
-            spark, store, trainer.blocks(), decoder, checkpoint=f"{last.model}:{state.iteration}",
+            spark, store, decoder, checkpoint=f"{last.model}:{state.iteration}",
             directions=cfg.direction_list,
             extra={"config": cfg.to_dict(), "corpus_fingerprint": fingerprint, "summary": encoded,
                    "stage_index": state.stage_index, **(run_info or {})})
