@@ -206,7 +206,7 @@ class GoldMonitor:
                              if keys else f"{gold.path}: the gold file holds no rows")
         log(f"gold: {len(trained)} of {len(keys)} gold pairs found among the trained pairs"
             + (f" ({n_missing} not: absent from the corpus or skipped)" if n_missing else "")
-            + f"; scored after every iteration")
+            + "; scored after every iteration")
         return cls(spark, cfg, gold, subset, key_of_row, n_missing)
 
     def tables(self, table_path: str) -> dict[str, DirectionTable]:
