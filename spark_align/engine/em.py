@@ -85,7 +85,9 @@ class Trainer:
         self.n_words = {"forward": encoded["n_tgt_tokens"], "reverse": encoded["n_src_tokens"]}
         self._last_per_word: dict[str, float] = {}
         self._units: list[tuple[str, int]] | None = None
-        self._unit_blocks: list[tuple[int, int]] | None = None
+
+    def blocks(self):
+        return self.spark.read.parquet(self.store.spark_path("encoded", "blocks"))
 
     def block_units(self) -> list[tuple[str, int]]:
         """(file, row group) of every row group of the encoded blocks, listed once per run."""
@@ -111,10 +113,10 @@ class Trainer:
         stage = self.cfg.stages[state.stage_index]
         rel = RunStore.checkpoint_dir(state.stage_index, stage.model, state.iteration + 1)
         if path == "join":
-            if self._unit_blocks is None:
-                self._unit_blocks = mstep.unit_blocks(self.store, self.block_units())
-            pairs = shipping.join_payloads(self.spark, self.store, self.block_units(), self._unit_blocks,
-                                           state.table_path, model, self.directions, state.dense, n_parts)
+            stats = shipping.join_stats(self.spark, self.store, self.blocks(), state.table_path, model,
+                                        self.directions, state.dense)
+            pairs = (stats.mapInArrow(mstep.make_payload_folder(n_parts), mstep.PAYLOAD_DDL)
+                     .rdd.map(lambda row: (row[0], row[1])))
         else:
             source = tables_mod.table_source(state.table_path, self.directions, src_v, tgt_v)
             units = self.block_units()

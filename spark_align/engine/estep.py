@@ -1,10 +1,8 @@
-"""The E-step task of the whole-table path, and the rows every E-step produces.
+"""E-step as a ``mapInArrow`` over encoded blocks, and the exact reduction of its output.
 
-Each task reads its row groups of encoded blocks, looks its blocks'
-dictionaries up in the whole table (``engine.tables``), runs the model's pure
-kernel per direction and folds everything into rows ``(dir, src, tgt, hi, lo)``
-(``engine.mstep.TaskCounts``; the join path of ``engine.shipping`` produces the
-same rows per row group of blocks):
+Each task turns an Arrow batch of block rows into numpy views, looks up its
+blocks' dictionaries in the broadcast table, runs the model's pure kernel per
+direction and emits rows ``(dir, src, tgt, hi, lo)``:
 
 * ``src >= 0``: expected count of the pair (src, tgt) in direction ``dir``;
 * ``src == -1``: entry ``tgt`` of the model's dense statistics vector;
@@ -16,11 +14,11 @@ same rows per row group of blocks):
   ``8`` preparing the task's output records).
 
 Counts leave the task as 64-bit fixed point in two parts (``v = hi / 2^20 +
-lo / 2^50``, error below 1e-15 per value) and are summed as integers.
-Integer sums do not depend on the order in which Spark's shuffle delivers
-partial sums, so a run is bit-for-bit repeatable and does not depend on the
-number of partitions. Limits: |per-block value| < 2^43 and fewer than 2^33
-summands per key.
+lo / 2^50``, error below 1e-15 per value) and are summed as integers by
+Spark. Integer sums do not depend on the order in which Spark's shuffle
+delivers partial sums, so a run is bit-for-bit repeatable and does not depend
+on the number of partitions. Limits: |per-block value| < 2^43 and fewer than
+2^33 summands per key.
 """
 from __future__ import annotations
 
@@ -28,12 +26,14 @@ import os
 import time
 
 import numpy as np
+import pyarrow as pa
 
 from spark_align.engine import faults
 from spark_align.engine.ingest import blocks_from_batch
 from spark_align.engine.tables import DIRS
 from spark_align.kernels import ragged
 
+STATS_SCHEMA = "dir byte, src int, tgt int, hi long, lo long"
 HI_SCALE = 2.0 ** 20
 LO_SCALE = 2.0 ** 30
 DENSE, SCALAR = -1, -2
@@ -149,6 +149,27 @@ def block_results(model, directions: tuple[str, ...], block, t_locals: dict[str,
                  np.concatenate([stats[stat_index], [loglik, kernel_seconds, n_links]]))
         out.append((DIRS.index(direction), emitted, counts, other))
     return out
+
+
+def block_rows(model, directions: tuple[str, ...], block, t_locals: dict[str, np.ndarray],
+               dense: dict[str, dict]) -> list[tuple[np.ndarray, ...]]:
+    """:func:`block_results` as (dir, src, tgt, value) array tuples, one per direction."""
+    src, tgt = ragged.split_key(block.dict_keys)
+    parts = []
+    for d, emitted, counts, (o_src, o_tgt, o_val) in block_results(model, directions, block, t_locals, dense):
+        values = np.concatenate([counts[emitted], o_val])
+        parts.append((np.full(len(values), d, np.int8), np.concatenate([src[emitted], o_src]).astype(np.int32),
+                      np.concatenate([tgt[emitted], o_tgt]).astype(np.int32), values))
+    return parts
+
+
+def rows_batch(parts: list[tuple[np.ndarray, ...]]) -> pa.RecordBatch:
+    """One Arrow batch of ``STATS_SCHEMA`` rows from :func:`block_rows` parts (values as fixed point)."""
+    d_col, s_col, t_col, v_col = (np.concatenate(x) for x in zip(*parts))
+    hi, lo = to_fixed(v_col)
+    return pa.RecordBatch.from_arrays(
+        [pa.array(d_col), pa.array(s_col), pa.array(t_col), pa.array(hi), pa.array(lo)],
+        names=["dir", "src", "tgt", "hi", "lo"])
 
 
 # Benchmark-only: when set (to a directory), each E-step task appends its Python worker's peak

@@ -152,6 +152,21 @@ def decode(data) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     return np.cumsum(deltas, dtype=np.int64), hi, lo
 
 
+def make_payload_folder(n_buckets: int):
+    """``mapInArrow`` function: ``engine.estep.STATS_SCHEMA`` rows -> (bucket, payload), folded per task."""
+
+    def fold(batches):
+        buffer = counts.CountBuffer()
+        for batch in batches:
+            cols = [batch.column(i).to_numpy() for i in range(5)]
+            fold_rows(buffer, *cols)
+        for bucket, data in payloads(buffer, n_buckets):
+            yield pa.RecordBatch.from_arrays([pa.array([bucket], pa.int32()), pa.array([data], pa.binary())],
+                                             names=["bucket", "payload"])
+
+    return fold
+
+
 PAYLOAD_DDL = "bucket int, payload binary"
 
 
@@ -252,16 +267,6 @@ def block_units(store) -> list[tuple[str, int]]:
             n = pq.ParquetFile(fh).metadata.num_row_groups
         units.extend((path, rg) for rg in range(n))
     return units
-
-
-def unit_blocks(store, units: list[tuple[str, int]]) -> list[tuple[int, int]]:
-    """(unit index, block_id) of every block of the given row groups (only the block_id column is read)."""
-    out = []
-    for u, (path, row_group) in enumerate(units):
-        with store.fs.open(path, "rb") as fh:
-            ids = pq.ParquetFile(fh).read_row_group(row_group, columns=["block_id"]).column(0).to_pylist()
-        out.extend((u, int(b)) for b in ids)
-    return out
 
 
 def read_unit(fs, path: str, row_group: int, batch_rows: int = 4):

@@ -17,18 +17,16 @@ shuffle. The *block dictionary* ``(block_id, idx, key)`` -- every block's
 ``dict_keys`` exploded, ``idx`` its position -- is written once per run under
 ``encoded/block_dict`` (on first use). Per iteration::
 
-    params = block_dict JOIN table ON key JOIN unit_of ON block_id  -> (unit, block_id, idx, dir, prob)
-    params.groupBy(unit).applyInArrow(E-step of the unit's blocks)  -> (bucket, payload)
+    params = block_dict JOIN table ON key            -> (block_id, idx, dir, prob)
+    blocks.groupBy(block_id).cogroup(params.groupBy(block_id)).applyInArrow(E-step)
 
-A *unit* is one row group of the encoded blocks (``engine.mstep.block_units``).
-Each group reads its unit's blocks straight from Parquet, scatters each
-block's params into ``t_local`` (``MIN_PROB`` where the join found nothing, as
-the broadcast lookup does), and folds the unit's counts into one payload per
-reducer bucket. Memory per task: one row group of blocks plus 24 bytes x their
-dictionaries, independent of the table's size; the driver holds nothing
-table-sized. The price is a shuffle per iteration of the block dictionary
-joined with the table (about 30 bytes per dictionary entry), which the
-broadcast path avoids; the blocks themselves are never shuffled.
+Each cogroup call sees one block and its params and scatters them into
+``t_local`` (``MIN_PROB`` where the join found nothing, as the broadcast
+lookup does). Memory per task: one block plus 24 bytes x its dictionary,
+independent of the table's size; the driver holds nothing table-sized. The
+price is a shuffle per iteration of the block dictionary joined with the table
+(about 30 bytes per dictionary entry) and of the blocks themselves (the link
+grid: 4 bytes per cell), which the broadcast path avoids.
 
 The rule (``--shipping auto``): broadcast while the whole table fits the
 budget, ``entries x 48 bytes <= --table-budget-mb``, else join. The default
@@ -42,7 +40,7 @@ import numpy as np
 import pyarrow as pa
 
 from spark_align.config import SHIPPINGS as SHIPPING_MODES
-from spark_align.engine.estep import _maybe_fail, block_results, note_task_memory
+from spark_align.engine.estep import STATS_SCHEMA, _maybe_fail, block_rows, note_task_memory, rows_batch
 from spark_align.engine.ingest import blocks_from_batch
 from spark_align.engine.tables import DIRS, MIN_PROB
 
@@ -112,66 +110,37 @@ def local_probs(n_dict: int, idx: np.ndarray, dirs: np.ndarray, probs: np.ndarra
     return out
 
 
-def make_join_estep(model, directions: tuple[str, ...], dense: dict[str, dict], units: list[tuple[str, int]],
-                    blocks_url: str, n_buckets: int):
-    """The ``applyInArrow`` function: one unit's params -> (bucket, payload) rows of its counts.
+def make_join_estep(model, directions: tuple[str, ...], dense: dict[str, dict]):
+    """The cogroup function: (one block's row, its params) -> ``STATS_SCHEMA`` rows."""
 
-    A group holds the params of every block of one row group (``unit``) of the encoded blocks, plus
-    one marker row (``block_id`` -1) so that a unit whose entries were all pruned still has a group.
-    The function reads the unit's blocks itself (pyarrow through fsspec), scatters each block's
-    params into its ``t_local``, runs the E-step and folds the unit's counts before emitting them.
-    """
-
-    def estep(params: pa.Table) -> pa.Table:
-        import fsspec
-
-        from spark_align.engine import mstep
-
+    def estep(block_table: pa.Table, params: pa.Table) -> pa.Table:
         _maybe_fail()
-        path, row_group = units[params.column("unit")[0].as_py()]
-        block_id = params.column("block_id").to_numpy()
-        order = np.argsort(block_id, kind="stable")
-        sorted_ids = block_id[order]
-        idx, dirs, probs = (params.column(c).to_numpy() for c in ("idx", "dir", "prob"))
-        fs, _root = fsspec.core.url_to_fs(blocks_url)
-        task = mstep.TaskCounts({})  # no table here: every count goes through the task's buffer
-        for batch in mstep.read_unit(fs, path, row_group):
-            for bid, _rows, block in blocks_from_batch(batch):
-                lo, hi = np.searchsorted(sorted_ids, [bid, bid + 1])
-                mine = order[lo:hi]
-                t_locals = local_probs(len(block.dict_keys), idx[mine], dirs[mine], probs[mine], directions)
-                for result in block_results(model, directions, block, t_locals, dense):
-                    task.add(block.dict_keys, None, *result)
+        parts = []
+        idx = params.column("idx").to_numpy()
+        dirs = params.column("dir").to_numpy()
+        probs = params.column("prob").to_numpy()
+        for batch in block_table.to_batches():
+            for _block_id, _rows, block in blocks_from_batch(batch):
+                t_locals = local_probs(len(block.dict_keys), idx, dirs, probs, directions)
+                parts.extend(block_rows(model, directions, block, t_locals, dense))
         note_task_memory("join")
-        records = list(task.payloads(n_buckets))
-        return pa.table({"bucket": pa.array([b for b, _ in records], pa.int32()),
-                         "payload": pa.array([data for _, data in records], pa.binary())})
+        if not parts:
+            return pa.Table.from_batches([], schema=_stats_arrow_schema())
+        return pa.Table.from_batches([rows_batch(parts)])
 
     return estep
 
 
-def join_payloads(spark, store, units: list[tuple[str, int]], unit_blocks: list[tuple[int, int]],
-                  table_path: str, model, directions: tuple[str, ...], dense: dict[str, dict], n_buckets: int):
-    """(bucket, payload) pairs of one iteration with per-block parameter shipping.
+def _stats_arrow_schema() -> pa.Schema:
+    return pa.schema([("dir", pa.int8()), ("src", pa.int32()), ("tgt", pa.int32()),
+                      ("hi", pa.int64()), ("lo", pa.int64())])
 
-    ``units``: (file, row group) of the encoded blocks; ``unit_blocks``: (unit index, block_id) of
-    every block. Only the joined params are shuffled (to the unit that needs them); the blocks stay
-    where they are written and are read by the task that decodes their unit.
-    """
-    from pyspark.sql import functions as F
 
-    from spark_align.engine import mstep
-    from spark_align.store import fsspec_url
-
-    blocks_df = spark.read.parquet(store.spark_path("encoded", "blocks"))
+def join_stats(spark, store, blocks_df, table_path: str, model, directions: tuple[str, ...],
+               dense: dict[str, dict]):
+    """E-step rows (``STATS_SCHEMA``) of one iteration with per-block parameter shipping."""
     block_dict = block_dict_frame(spark, store, blocks_df)
-    unit_of = spark.createDataFrame(unit_blocks, "unit int, block_id long")
-    params = (params_frame(block_dict, spark.read.parquet(table_path)).join(F.broadcast(unit_of), "block_id")
-              .select("unit", "block_id", F.col("idx").cast("int").alias("idx"),
-                      F.col("dir").cast("byte").alias("dir"), F.col("prob").cast("double").alias("prob")))
-    markers = spark.createDataFrame([(u, -1, -1, 0, 0.0) for u in range(len(units))],
-                                    "unit int, block_id long, idx int, dir byte, prob double")
-    fn = make_join_estep(model, directions, dense, units, fsspec_url(store.spark_path("encoded", "blocks")),
-                         n_buckets)
-    return (params.unionByName(markers).groupBy("unit").applyInArrow(fn, mstep.PAYLOAD_DDL)
-            .rdd.map(lambda row: (row[0], row[1])))
+    params = params_frame(block_dict, spark.read.parquet(table_path))
+    fn = make_join_estep(model, directions, dense)
+    return (blocks_df.groupBy("block_id").cogroup(params.groupBy("block_id"))
+            .applyInArrow(fn, STATS_SCHEMA))
