@@ -224,7 +224,7 @@ def align_corpus(spark, run_dir: str, corpus: CorpusConfig, out_dir: str, *, che
         tgt_index, _ = ingest.load_vocab_index(spark, run.store.spark_path("vocab", "target"))
         blocks = ingest.encode_blocks(spark, tokens, src_index, tgt_index, cfg.block_size,
                                       unknown_ids=unknown_ids(src_v, tgt_v))
-        blocks.write.mode("overwrite").parquet(out.spark_path("encoded", "blocks"))
+        ingest.write_blocks(blocks, out.spark_path("encoded", "blocks"), cfg.block_size)
     finally:
         tokens.unpersist()
     tabs = with_unknown_words(checkpoint_tables(spark, run, ckpt), src_v, tgt_v)

@@ -272,6 +272,20 @@ def blocks_from_batch(batch: pa.RecordBatch) -> list[tuple[int, np.ndarray, ragg
 PAIRS_PER_ROW_GROUP = 8192  # encoded blocks per Parquet row group = this // block size (at least 1)
 
 
+def write_blocks(blocks, path: str, block_size: int) -> None:
+    """Write encoded blocks as the E-step and the output pass read them.
+
+    Small row groups: a task reads whole row groups, so they bound its memory and are the units of
+    work that spread the E-step and the decoding over tasks (blocks are MBs each: the byte limit alone
+    is only checked every 100 rows). LZ4 (raw) rather than Snappy: the blocks are read again in every
+    iteration, and reading all row groups of 100k pairs took 0.23 s against 0.32 s, in 5% less space.
+    """
+    (blocks.write.mode("overwrite")
+     .option("parquet.block.row.count.limit", max(1, PAIRS_PER_ROW_GROUP // block_size))
+     .option("compression", "lz4_raw")
+     .parquet(path))
+
+
 def ingest(spark, cfg: RunConfig, store: RunStore) -> IngestSummary:
     """Snapshot, tokens, vocabularies and encoded blocks; returns what it counted."""
     from pyspark.sql import functions as F
@@ -295,12 +309,7 @@ def ingest(spark, cfg: RunConfig, store: RunStore) -> IngestSummary:
         src_index, n_src_vocab = load_vocab_index(spark, store.spark_path("vocab", "source"))
         tgt_index, n_tgt_vocab = load_vocab_index(spark, store.spark_path("vocab", "target"))
         blocks = encode_blocks(spark, tokens, src_index, tgt_index, cfg.block_size)
-        # Small row groups: an E-step task reads whole row groups, so they bound its memory and are
-        # the units of work that spread the E-step over tasks (blocks are MBs each: the byte limit
-        # alone is only checked every 100 rows).
-        (blocks.write.mode("overwrite")
-         .option("parquet.block.row.count.limit", max(1, PAIRS_PER_ROW_GROUP // cfg.block_size))
-         .parquet(store.spark_path("encoded", "blocks")))
+        write_blocks(blocks, store.spark_path("encoded", "blocks"), cfg.block_size)
     finally:
         tokens.unpersist()
     n_blocks = spark.read.parquet(store.spark_path("encoded", "blocks")).count()
