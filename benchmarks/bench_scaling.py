@@ -31,6 +31,8 @@ table, which is never shipped per entry):
 * ``exponent``: the slope of log(iteration seconds) against log(pairs) over the sizes run;
 * ``task_rss_mb``: peak resident memory of the E-step's Python workers (``ru_maxrss`` noted by
   each E-step task when ``SPARK_ALIGN_BENCH_TASK_MEMORY_DIR`` is set; max over tasks);
+* ``output_s``: seconds of the output pass (decoding every pair, joining to the corpus, writing;
+  ``output.json``);
 * ``driver_rss_mb``: peak resident memory of the driver's Python process (it plans the jobs and
   collects small sums; no path reads the table on the driver). In local mode the driver JVM is also the
   executor, so its heap is not a driver-only figure and is not reported.
@@ -121,7 +123,9 @@ def _child_train(args) -> None:
                      "loglik_per_word": m["metrics"][dirs[0]]["loglik_per_word"],
                      "pruned": {d: m["metrics"][d].get("pruned") for d in dirs}})
     task_kb = [int(Path(args.memdir, f).read_text()) for f in os.listdir(args.memdir)]
-    print(json.dumps({"iterations": rows, "total_s": total, "task_rss_mb": max(task_kb, default=0) / 1024,
+    output_s = RunStore(args.run).read_json("output.json")["seconds"]
+    print(json.dumps({"iterations": rows, "total_s": total, "output_s": output_s,
+                      "task_rss_mb": max(task_kb, default=0) / 1024,
                       "driver_rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024}))
     spark.stop()
 
@@ -180,7 +184,8 @@ def fmt(r: dict) -> str:
             f" {pct('table_load_share')}, block reads {pct('block_read_share')}, output records {pct('payload_share')},"
             f" other E-step {pct('estep_other')}, reducers {pct('reduce_share')}, rest {pct('rest_share')})\n"
             f"    task RSS {r['task_rss_mb']:6.0f} MB  "
-            f"driver RSS {r['driver_rss_mb']:5.0f} MB  (load {r['load_avg']:.1f}, total {r['total_s']:.0f} s)")
+            f"driver RSS {r['driver_rss_mb']:5.0f} MB  output pass {r.get('output_s', float('nan')):.1f} s  "
+            f"(load {r['load_avg']:.1f}, total {r['total_s']:.0f} s)")
 
 
 def main() -> None:
