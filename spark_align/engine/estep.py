@@ -1,8 +1,12 @@
-"""E-step as a ``mapInArrow`` over encoded blocks, and the exact reduction of its output.
+"""The E-step tasks, and the rows they produce.
 
-Each task turns an Arrow batch of block rows into numpy views, looks up its
-blocks' dictionaries in the broadcast table, runs the model's pure kernel per
-direction and emits rows ``(dir, src, tgt, hi, lo)``:
+On the whole-table path (:func:`make_estep`) each task reads its row groups of
+encoded blocks, looks its blocks' dictionaries up in the table every Python
+worker holds (``engine.tables``), runs the model's pure kernel per direction
+and folds everything into one sum per row (``engine.mstep.TaskCounts``); on the
+join path (``engine.shipping``) each block's rows are emitted as they are
+(:func:`block_rows`) and folded per task afterwards. Rows are
+``(dir, src, tgt, hi, lo)``:
 
 * ``src >= 0``: expected count of the pair (src, tgt) in direction ``dir``;
 * ``src == -1``: entry ``tgt`` of the model's dense statistics vector;
@@ -14,8 +18,8 @@ direction and emits rows ``(dir, src, tgt, hi, lo)``:
   ``8`` preparing the task's output records).
 
 Counts leave the task as 64-bit fixed point in two parts (``v = hi / 2^20 +
-lo / 2^50``, error below 1e-15 per value) and are summed as integers by
-Spark. Integer sums do not depend on the order in which Spark's shuffle
+lo / 2^50``, error below 1e-15 per value) and are summed as integers.
+Integer sums do not depend on the order in which Spark's shuffle
 delivers partial sums, so a run is bit-for-bit repeatable and does not depend
 on the number of partitions. Limits: |per-block value| < 2^43 and fewer than
 2^33 summands per key.
