@@ -18,6 +18,7 @@ import pyarrow as pa
 from spark_align.engine import faults
 from spark_align.engine.ingest import ROW, blocks_from_batch
 from spark_align.kernels import ragged
+from spark_align.kernels.lookup import find
 from spark_align.models.base import decode_all
 from spark_align.store import FORMAT_VERSION, RunStore
 
@@ -68,8 +69,6 @@ def mean_posterior(links, dense_fwd, dense_rev) -> np.ndarray:
     for dense in (dense_fwd, dense_rev):
         dkey = _link_key(*dense[:3])
         order = np.argsort(dkey)
-        from spark_align.kernels.lookup import find
-
         total += find(dkey[order], dense[3][order], key, 0.0)[2]
     return total / 2.0
 

@@ -57,9 +57,7 @@ class DirectionTable:
         The E-step looks keys up once and reuses the positions to add the block's counts into
         table-aligned accumulators (``engine.mstep.TaskCounts``).
         """
-        if self.constant is not None:
-            return None
-        return ragged.positions(self.keys, dict_keys)
+        return self.find(dict_keys)[0]
 
     def find(self, dict_keys: np.ndarray) -> tuple[tuple[np.ndarray, np.ndarray] | None, np.ndarray]:
         """(:meth:`positions`, :meth:`local`) in one pass over the table."""
@@ -169,6 +167,8 @@ def read_worker_tables(url: str, directions: tuple[str, ...]) -> dict[str, Direc
     fs, root = fsspec.core.url_to_fs(url)
     names = sorted(posixpath.basename(p.rstrip("/")) for p in fs.ls(root, detail=False))
     names = [n for n in names if not n.startswith(("_", "."))]
+    if not names:
+        return tables_from_arrow(read_table_arrow(url), directions)
     runs: dict[str, list] = {d: [] for d in directions}
     for index, name in enumerate(names):
         with fs.open(posixpath.join(root, name), "rb") as fh:
@@ -180,8 +180,6 @@ def read_worker_tables(url: str, directions: tuple[str, ...]) -> dict[str, Direc
         for d in directions:
             lo, hi = np.searchsorted(dir_col, [DIRS.index(d), DIRS.index(d) + 1])  # sorted by dir first
             runs[d].append((ragged.make_key(src[lo:hi], tgt[lo:hi]), prob[lo:hi]))
-    if not names:
-        return tables_from_arrow(read_table_arrow(url), directions)
     out = {}
     for d in directions:
         keys, probs = (np.concatenate(x) for x in zip(*runs[d]))

@@ -223,13 +223,3 @@ def check_block(block: Block, *, full: bool = False) -> None:
             raise ValueError("grid index outside the dictionary")
         if np.any(np.diff(block.dict_keys) <= 0):
             raise ValueError("dictionary keys are not sorted and unique")
-
-
-def positions(table_keys: np.ndarray, keys: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """(position, found) of ``keys`` in a sorted key table; positions are valid indexes (0 if empty).
-
-    A galloping search compiled with numba (``kernels.lookup``): blocks' dictionaries are sorted.
-    """
-    from spark_align.kernels.lookup import positions as gallop_positions
-
-    return gallop_positions(table_keys, keys)
