@@ -12,8 +12,9 @@ into one block. Lexical probabilities are random. Figures printed:
 * the table lookup that precedes every E-step (``--lookup``, on by default): finding the
   block's dictionary keys in a whole table of ``--table-blocks`` such blocks' dictionaries
   (the realistic table: every co-occurring pair of a corpus that many times larger), by
-  ``np.searchsorted`` and by our galloping search (``kernels.lookup``), in ns per key and as a
-  ratio to the Model 1 E-step of the same block.
+  ``np.searchsorted``, by our galloping search (``kernels.lookup``) and from stored hints (the
+  insertion points of an earlier search, checked and used; also the cost of encoding and decoding
+  them), in ns per key and as a ratio to the Model 1 E-step of the same block.
 
 Run: ``python3 benchmarks/bench_kernels.py [--pairs 4000] [--repeat 3]``.
 """
@@ -93,8 +94,12 @@ def main() -> None:
             pos = np.minimum(np.searchsorted(table, keys), len(table) - 1)
             return np.where(table[pos] == keys, probs[pos], 1e-12)
 
+        hints = lookup.find_hinted(table, probs, keys, 1e-12, None)[3]
+        lookup.find_hinted(table, probs, keys[:10], 1e-12, hints[:10])
         for name, fn in (("searchsorted", searchsorted),
-                         ("galloping", lambda: lookup.find(table, probs, keys, 1e-12))):
+                         ("galloping", lambda: lookup.find(table, probs, keys, 1e-12)),
+                         ("hinted", lambda: lookup.find_hinted(table, probs, keys, 1e-12, hints)),
+                         ("hints decoded", lambda: lookup.decode_hints(lookup.encode_hints(hints)))):
             secs = best_time(fn, args.repeat)
             print(f"lookup {name:12s}: {secs:7.3f} s  {secs / len(keys) * 1e9:6.1f} ns/key  "
                   f"{len(keys)} keys in a {len(table)}-entry table  = {secs / ibm1_secs:.2f} x the ibm1 e_step")

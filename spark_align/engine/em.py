@@ -126,7 +126,8 @@ class Trainer:
             # retried or slow task less to redo.
             n_tasks = max(1, min(len(units), TASKS_PER_CORE * sc.defaultParallelism))
             estep = make_estep(model, self.directions, source, state.dense,
-                               blocks_url=fsspec_url(self.store.spark_path("encoded", "blocks")), n_buckets=n_parts)
+                               blocks_url=fsspec_url(self.store.spark_path("encoded", "blocks")), n_buckets=n_parts,
+                               hints_url=fsspec_url(self.store.spark_path("encoded", "hints")))
             pairs = sc.parallelize(units, n_tasks).mapPartitions(estep)
         self.store.remove(rel, "lex")  # what an interrupted attempt at this iteration left
         started = time.perf_counter()
@@ -157,6 +158,8 @@ class Trainer:
                           "table_load_seconds": sums[d]["scalar"].get(6, 0.0),
                           "block_read_seconds": sums[d]["scalar"].get(7, 0.0),
                           "payload_seconds": sums[d]["scalar"].get(8, 0.0),
+                          "lookup_keys_searched": sums[d]["scalar"].get(9, 0.0),
+                          "lookup_keys": sums[d]["scalar"].get(10, 0.0),
                           "reduce_task_seconds": float(sum(s["seconds"] for s in summaries)),
                           "job_seconds": job_seconds, "reducers": n_parts,
                           "shipping": path, "table_entries": n_entries, "new_table_entries": sums[d]["entries"]}

@@ -15,7 +15,8 @@ join path (``engine.shipping``) each block's rows are emitted as they are
   whole-table path only, per task: ``tgt == 3`` task seconds, of which ``tgt == 4`` finding the
   blocks' entries in the table (the lookup), ``5`` adding counts into the task's accumulators,
   ``6`` loading the table (first task of a Python worker per iteration), ``7`` reading blocks and
-  ``8`` preparing the task's output records).
+  ``8`` preparing the task's output records; per direction, ``9`` dictionary keys the lookup had
+  to search for (no usable stored hint, ``engine.hints``) and ``10`` keys it looked up).
 
 Counts leave the task as 64-bit fixed point in two parts (``v = hi / 2^20 +
 lo / 2^50``, error below 1e-15 per value) and are summed as integers.
@@ -73,55 +74,85 @@ def _maybe_fail() -> None:
 
 
 def make_estep(model, directions: tuple[str, ...], tables_src, dense: dict[str, dict], *, blocks_url: str,
-               n_buckets: int):
+               n_buckets: int, hints_url: str | None = None):
     """The E-step task of the whole-table path: (file, row group) units -> (bucket, payload) records.
 
     Each task reads its row groups of encoded blocks straight from Parquet (pyarrow through fsspec,
     a few block rows per batch), looks every block's dictionary up in the whole table
-    (``tables_src.value``, read once per Python worker), and folds all its blocks' counts into one
-    sum per distinct (dir, src, tgt) before emitting them (see ``engine.mstep``).
+    (``tables_src.value``, read once per Python worker), starting from the row group's stored hints
+    under ``hints_url`` (``engine.hints``; None: no hints) and storing them again if any failed, and
+    folds all its blocks' counts into one sum per distinct (dir, src, tgt) before emitting them (see
+    ``engine.mstep``).
     """
 
     def estep(units):
         import fsspec
 
-        from spark_align.engine import mstep
+        from spark_align.engine import hints, mstep
 
         _maybe_fail()
         started = time.perf_counter()
         tables = tables_src.value
         load_seconds = time.perf_counter() - started
         fs, _root = fsspec.core.url_to_fs(blocks_url)
+        hints_fs, hints_root = fsspec.core.url_to_fs(hints_url) if hints_url else (None, None)
+        hinted = [d for d in directions if hints_fs is not None and tables[d].constant is None]
         task = mstep.TaskCounts(tables)
         lookup_seconds = add_seconds = read_seconds = 0.0
+        searched_total = dict.fromkeys(directions, 0)
+        keys_total = dict.fromkeys(directions, 0)
         for path, row_group in units:
             read_started = time.perf_counter()
             blocks = [block for batch in mstep.read_unit(fs, path, row_group)
                       for _block_id, _rows, block in blocks_from_batch(batch)]
             read_seconds += time.perf_counter() - read_started
+            looked_up = time.perf_counter()
+            n_keys = sum(len(block.dict_keys) for block in blocks)
+            stored = {d: hints.read(hints_fs, hints_root, d, path, row_group, n_keys) for d in hinted}
+            points = {d: [] for d in hinted}
+            searched = dict.fromkeys(directions, 0)
+            lookup_seconds += time.perf_counter() - looked_up
+            offset = 0
             for block in blocks:
                 looked_up = time.perf_counter()
+                n = len(block.dict_keys)
                 found, t_locals = {}, {}
                 for d in directions:
-                    found[d], t_locals[d] = tables[d].find(block.dict_keys)
+                    h = stored.get(d)
+                    found[d], t_locals[d], block_points, block_searched = tables[d].find_hinted(
+                        block.dict_keys, None if h is None else h[offset:offset + n])
+                    searched[d] += block_searched
+                    if d in points:
+                        points[d].append(block_points)
+                offset += n
                 lookup_seconds += time.perf_counter() - looked_up
                 for result in block_results(model, directions, block, t_locals, dense):
                     added = time.perf_counter()
                     task.add(block.dict_keys, found[DIRS[result[0]]], *result)
                     add_seconds += time.perf_counter() - added
+            looked_up = time.perf_counter()
+            for d in hinted:
+                if searched[d]:
+                    hints.write(hints_fs, hints_root, d, path, row_group,
+                                np.concatenate(points[d]) if points[d] else np.zeros(0, np.int64))
+            for d in directions:
+                searched_total[d] += searched[d]
+                keys_total[d] += n_keys
+            lookup_seconds += time.perf_counter() - looked_up
         payload_started = time.perf_counter()
         records = list(task.payloads(n_buckets))
         payload_seconds = time.perf_counter() - payload_started
         note_task_memory("broadcast")
-        # Scalars 3-8, the same under every direction, in a record of their own: the task's wall time
-        # (reading, table lookups, kernels, folding, preparing its output) and the parts of it named in
-        # the module docstring.
-        values = np.array([time.perf_counter() - started, lookup_seconds, add_seconds, load_seconds, read_seconds,
-                           payload_seconds])
+        # Scalars 3-10 in a record of their own: the task's wall time (reading, table lookups, kernels,
+        # folding, preparing its output) and the parts of it named in the module docstring, the same
+        # under every direction, then the direction's lookup counts.
+        values = [time.perf_counter() - started, lookup_seconds, add_seconds, load_seconds, read_seconds,
+                  payload_seconds]
         timing = mstep.TaskCounts(tables)
         for direction in directions:
-            timing.add_rows(DIRS.index(direction), np.full(len(values), SCALAR, np.int32),
-                            np.arange(3, 3 + len(values), dtype=np.int32), values)
+            row = np.array(values + [searched_total[direction], keys_total[direction]], np.float64)
+            timing.add_rows(DIRS.index(direction), np.full(len(row), SCALAR, np.int32),
+                            np.arange(3, 3 + len(row), dtype=np.int32), row)
         yield from records
         yield from timing.payloads(n_buckets)
 

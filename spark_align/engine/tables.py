@@ -68,6 +68,17 @@ class DirectionTable:
         pos, hit, probs = find(self.keys, self.probs, dict_keys, MIN_PROB)
         return (pos, hit), probs
 
+    def find_hinted(self, dict_keys: np.ndarray, hints: np.ndarray | None):
+        """:meth:`find` starting from stored hints (``engine.hints``); also returns the insertion points
+        (the next hints) and how many keys had to be searched for. A constant table has no positions:
+        (None, probabilities, None, 0)."""
+        if self.constant is not None:
+            return None, np.full(len(dict_keys), self.constant), None, 0
+        from spark_align.kernels.lookup import find_hinted
+
+        pos, hit, probs, points, searched = find_hinted(self.keys, self.probs, dict_keys, MIN_PROB, hints)
+        return (pos, hit), probs, points, searched
+
     def bucket_order(self, d: int, n_buckets: int) -> tuple[np.ndarray, np.ndarray]:
         """(order, bounds): table positions grouped by reducer bucket (``kernels.counts.bucket_of_cond``
         of the conditioning word, direction index ``d``), ascending within each bucket;

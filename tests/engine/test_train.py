@@ -114,6 +114,41 @@ def test_resume_gives_the_same_tables_as_an_uninterrupted_run(spark, tmp_path):
     assert a.column("alignment").equals(b.column("alignment"))
 
 
+def test_stored_lookup_hints_are_checked_and_never_change_results(spark, tmp_path):
+    from spark_align.kernels import lookup
+
+    s, t = write_text(tmp_path, TOY_SOURCE * 3, TOY_TARGET * 3)
+    corpus = CorpusConfig(source_text=s, target_text=t)
+    straight, resumed = str(tmp_path / "straight"), str(tmp_path / "resumed")
+    train(spark, config(corpus, "ibm1:4", directions="both"), straight, log=lambda _: None)
+
+    def searched(run_dir, iteration):
+        m = manifest(run_dir, "00-ibm1", iteration)["metrics"]
+        assert all(m[d]["lookup_keys"] > 0 for d in ("forward", "reverse"))
+        return {d: m[d]["lookup_keys_searched"] / m[d]["lookup_keys"] for d in ("forward", "reverse")}
+
+    # Iteration 1 has the constant table; 2 searches every key and stores the hints; 3 and 4 use them.
+    assert searched(straight, 2) == {"forward": 1.0, "reverse": 1.0}
+    assert searched(straight, 3) == searched(straight, 4) == {"forward": 0.0, "reverse": 0.0}
+
+    train(spark, config(corpus, "ibm1:2", directions="both"), resumed, log=lambda _: None)
+    hints_dir = os.path.join(resumed, "encoded", "hints")
+    (fwd,), (rev,) = (sorted(os.listdir(os.path.join(hints_dir, d))) for d in ("forward", "reverse"))
+    with open(os.path.join(hints_dir, "forward", fwd), "wb") as fh:
+        fh.write(b"not hints")                                   # unreadable: searched afresh
+    with open(os.path.join(hints_dir, "reverse", rev), "rb+") as fh:
+        points = lookup.decode_hints(fh.read())
+        points[::2] += 1                                         # readable, but half of them wrong
+        fh.seek(0)
+        fh.write(lookup.encode_hints(points))
+        fh.truncate()
+    train(spark, config(corpus, "ibm1:4", directions="both"), resumed, resume=True, log=lambda _: None)
+    assert read_table(straight, "00-ibm1", 4).equals(read_table(resumed, "00-ibm1", 4))
+    third = searched(resumed, 3)
+    assert third["forward"] == 1.0 and third["reverse"] == pytest.approx(0.5, abs=0.01)
+    assert searched(resumed, 4) == {"forward": 0.0, "reverse": 0.0}  # stored again by iteration 3
+
+
 def test_parquet_corpus_with_id_and_renamed_columns(spark, tmp_path):
     import pyarrow.parquet as pq
 

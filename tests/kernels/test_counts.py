@@ -166,6 +166,47 @@ def test_galloping_positions_equal_searchsorted():
     assert not hit.any() and list(pos) == [0, 0]
 
 
+def test_hinted_lookup_equals_a_fresh_search_whatever_the_hints():
+    from spark_align.kernels import lookup
+
+    rng = np.random.default_rng(8)
+    table = np.unique(rng.integers(0, 10 ** 6, 5000).astype(np.int64))
+    values = rng.random(len(table))
+    keys = np.concatenate([np.unique(rng.integers(-5, 10 ** 6 + 5, 700)),  # two sorted runs, some absent
+                           np.unique(rng.integers(0, 10 ** 6, 300))]).astype(np.int64)
+    want = lookup.find(table, values, keys, 1e-12)
+    pos, hit, got, points, searched = lookup.find_hinted(table, values, keys, 1e-12, None)
+    assert searched == len(keys)
+    for a, b in zip(want, (pos, hit, got)):
+        np.testing.assert_array_equal(a, b)
+    np.testing.assert_array_equal(points, np.searchsorted(table, keys))  # insertion points, unclipped
+    # Exact hints: nothing is searched for; wrong ones (shifted, negative, past the end) are found out.
+    assert lookup.find_hinted(table, values, keys, 1e-12, points)[4] == 0
+    bad = points.copy()
+    bad[::5] += 1
+    bad[1], bad[2] = -7, len(table) + 9
+    wrong = np.count_nonzero(bad != points)
+    pos, hit, got, again, searched = lookup.find_hinted(table, values, keys, 1e-12, bad)
+    assert searched == wrong
+    for a, b in zip(want, (pos, hit, got)):
+        np.testing.assert_array_equal(a, b)
+    np.testing.assert_array_equal(again, points)
+    with pytest.raises(ValueError, match="hints for"):
+        lookup.find_hinted(table, values, keys, 1e-12, points[:-1])
+
+
+def test_hints_encoding_round_trips_and_refuses_damage():
+    from spark_align.kernels import lookup
+
+    points = np.array([0, 3, 257, 257, 900_000, 12, 13, 268, 2 ** 40], np.int64)  # steps 0..254 are one byte
+    data = lookup.encode_hints(points)
+    np.testing.assert_array_equal(lookup.decode_hints(data), points)
+    assert len(lookup.decode_hints(lookup.encode_hints(np.zeros(0, np.int64)))) == 0
+    for damaged in (data[:-1], data + b"x", b"junk" + data[4:], data[:10]):
+        with pytest.raises(ValueError):
+            lookup.decode_hints(damaged)
+
+
 def test_ids_beyond_the_key_range_are_refused():
     buf = counts.CountBuffer()
     with pytest.raises(ValueError, match="word ids must stay below"):
