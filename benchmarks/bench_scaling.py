@@ -8,10 +8,14 @@ Every configuration runs in fresh processes (a Spark session of its own, ``local
 3. another child resumes it with ``engine.run.train(..., resume=True)``, so its Python workers
    run E-steps (and the final decoding) only, and prints one JSON line of figures, read back here.
 
-Figures per configuration (iterations 2.. only: iteration 1 starts from the constant uniform
-table, which is never shipped per entry):
+Figures per configuration, over the iterations after the first ``--skip`` (2) of the first stage:
+iteration 1 starts from the constant uniform table, which is never shipped per entry, and
+iteration 2 searches every key in the table and stores the lookup hints that later iterations
+start from (``engine.hints``); ``--skip 1`` includes it. Shares are of those iterations' total
+core time:
 
 * ``iter_s``: wall seconds per EM iteration (median), from the checkpoint manifests;
+* ``searched``: the share of dictionary keys the lookup had to search for (no valid stored hint);
 * ``mlinks_core``: E-step kernel throughput, million links per second per core, = links /
   kernel seconds (a link is one (generated token, cond position incl. NULL) cell; both directions);
 * ``outside``: the share of an iteration's core time spent outside the model kernels,
@@ -131,7 +135,7 @@ def _child_train(args) -> None:
 
 
 def run_config(work: Path, pairs: int, *, vocab: int, shipping: str, block_size: int, stages: str,
-               cores: int, prune_below: float | None = None) -> dict:
+               cores: int, prune_below: float | None = None, skip: int = 2) -> dict:
     corpus = work / f"corpus-{pairs}-{vocab}"
     if not (corpus / "_done").exists():
         subprocess.run([sys.executable, __file__, "_generate", "--pairs", str(pairs), "--vocab", str(vocab),
@@ -148,22 +152,28 @@ def run_config(work: Path, pairs: int, *, vocab: int, shipping: str, block_size:
     cmd[2] = "_train"
     out = subprocess.run(cmd, check=True, stdout=subprocess.PIPE, text=True).stdout
     result = json.loads(out.strip().splitlines()[-1])
-    later = [r for r in result["iterations"] if not (r["stage"] == stages.split(":")[0] and r["iteration"] == 1)]
+    first = stages.split(",")[0].split(":")[0]
+    later = [r for r in result["iterations"] if not (r["stage"] == first and r["iteration"] <= skip)]
     result.update(pairs=pairs, vocab=vocab, shipping_mode=shipping, block_size=block_size, cores=cores,
                   load_avg=os.getloadavg()[0])
     if later:
+        # Seconds per iteration: the median; shares: of the same iterations' total core time, so that
+        # the parts add up (medians of parts taken one by one do not).
         secs = statistics.median(r["seconds"] for r in later)
-        kernel = statistics.median(r["kernel_seconds"] for r in later)
-        links = statistics.median(r["links"] for r in later)
-        task = statistics.median(r["estep_task_seconds"] for r in later)
-        reduce = statistics.median(r["reduce_task_seconds"] for r in later)
-        parts = {part: statistics.median(r[f"{part}_seconds"] for r in later) for part in PARTS}
-        core_s = secs * cores
+        kernel = sum(r["kernel_seconds"] for r in later) / len(later)
+        links = sum(r["links"] for r in later) / len(later)
+        task = sum(r["estep_task_seconds"] for r in later) / len(later)
+        reduce = sum(r["reduce_task_seconds"] for r in later) / len(later)
+        parts = {part: sum(r[f"{part}_seconds"] for r in later) / len(later) for part in PARTS}
+        searched = sum(r.get("lookup_keys_searched", 0.0) for r in later)
+        looked_up = sum(r.get("lookup_keys", 0.0) for r in later)
+        core_s = sum(r["seconds"] for r in later) / len(later) * cores
         compute = kernel + parts["lookup"] + parts["accumulate"]
         result.update(iter_s=secs, kernel_s=kernel, links=links, mlinks_core=links / kernel / 1e6,
                       outside=1.0 - kernel / core_s, outside_compute=1.0 - compute / core_s,
                       shipping=later[-1]["shipping"], table_entries=later[-1]["table_entries"],
                       lookup_vs_kernel=parts["lookup"] / kernel,
+                      searched_share=searched / looked_up if looked_up else float("nan"),
                       # where the core time went (shares of cores x iteration seconds)
                       **{f"{part}_share": v / core_s for part, v in parts.items()},
                       estep_other=(task - kernel - sum(parts.values())) / core_s if task else float("nan"),
@@ -180,7 +190,7 @@ def fmt(r: dict) -> str:
             f"table {r.get('table_entries') or 0:>9d}  iter {r.get('iter_s', float('nan')):7.2f} s  "
             f"kernel {r.get('mlinks_core', float('nan')):6.1f} M links/s/core\n"
             f"    outside the kernels {pct('outside')}, outside kernels + lookup + accumulation {pct('outside_compute')}"
-            f"  (lookup {pct('lookup_share')}, accumulation {pct('accumulate_share')}, table load"
+            f"  (lookup {pct('lookup_share')} with {pct('searched_share')} of keys searched, accumulation {pct('accumulate_share')}, table load"
             f" {pct('table_load_share')}, block reads {pct('block_read_share')}, output records {pct('payload_share')},"
             f" other E-step {pct('estep_other')}, reducers {pct('reduce_share')}, rest {pct('rest_share')})\n"
             f"    task RSS {r['task_rss_mb']:6.0f} MB  "
@@ -202,7 +212,10 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument("--sizes", default="20000,100000,300000", help="corpus sizes in pairs")
     parser.add_argument("--vocab", type=int, default=3000, help="words per side of the generated languages")
-    parser.add_argument("--stages", default="ibm1:3")
+    parser.add_argument("--stages", default="ibm1:4")
+    parser.add_argument("--skip", type=int, default=2,
+                        help="iterations of the first stage left out of the figures: the first has the constant "
+                             "table, the second searches every key and stores the lookup hints")
     parser.add_argument("--shipping", default="auto")
     parser.add_argument("--block-size", type=int, default=512)
     parser.add_argument("--cores", type=int, default=2)
@@ -230,20 +243,20 @@ def main() -> None:
         for vocab, block in (tuple(int(x) for x in c.split(":")) for c in args.memory_configs.split(",")):
             for shipping in ("broadcast", "join"):
                 record(run_config(work, n, vocab=vocab, shipping=shipping, block_size=block, stages=args.stages,
-                                  cores=args.cores))
+                                  skip=args.skip, cores=args.cores))
         return
     if args.prune is not None:
         n = int(args.sizes.split(",")[0])
         for prune in (None, args.prune):
             r = record(run_config(work, n, vocab=args.vocab, shipping=args.shipping, block_size=args.block_size,
-                                  stages=args.stages, cores=args.cores, prune_below=prune))
+                                  stages=args.stages, skip=args.skip, cores=args.cores, prune_below=prune))
             last = r["iterations"][-1]
             print(f"  prune {prune}: final loglik/word {last['loglik_per_word']:.5f}; per iteration: "
                   + "; ".join(f"{x['iteration']}: {x['loglik_per_word']:.5f} pruned {x['pruned']}"
                               for x in r["iterations"]))
         return
     results = [record(run_config(work, int(n), vocab=args.vocab, shipping=args.shipping,
-                                 block_size=args.block_size, stages=args.stages, cores=args.cores))
+                                 block_size=args.block_size, stages=args.stages, skip=args.skip, cores=args.cores))
                for n in args.sizes.split(",")]
     xs = [math.log(r["pairs"]) for r in results]
     ys = [math.log(r["iter_s"]) for r in results]

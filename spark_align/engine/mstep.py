@@ -32,7 +32,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from spark_align.engine.estep import DENSE, HI_SCALE, LO_SCALE, SCALAR, to_fixed
-from spark_align.engine.tables import BUCKET_META, BUCKETS_META, DIRS
+from spark_align.engine.tables import BUCKET_META, BUCKETS_META, DIRS, KEYS_META, keys_digest
 from spark_align.kernels import counts
 from spark_align.store import BUCKET_PROTOCOLS
 
@@ -178,8 +178,9 @@ def make_reducer(lex_url: str, n_parts: int, *, min_prob: float, prune_below: fl
     """The reducer: (partition index, (bucket, payload) records) -> one small summary dict.
 
     ``lex_url``: fsspec URL of the table directory being written; ``n_parts``: the number of reducers
-    (buckets). Each file records its bucket in its schema metadata, so the next E-step can use the
-    files as they are (``engine.tables.read_worker_tables``).
+    (buckets). Each file records its bucket and a digest of its keys in its schema metadata, so the next
+    E-step can use the files as they are and, where the keys did not change, read only their
+    probabilities (``engine.tables.read_worker_tables``).
     """
 
     def reduce(index, records):
@@ -206,7 +207,8 @@ def make_reducer(lex_url: str, n_parts: int, *, min_prob: float, prune_below: fl
             t_dir, t_src, t_tgt, prob = t_dir[keep], t_src[keep], t_tgt[keep], prob[keep]
         for d in np.unique(t_dir):
             summary["entries"][int(d)] = int(np.count_nonzero(t_dir == d))
-        schema = TABLE_SCHEMA.with_metadata({BUCKET_META: str(index), BUCKETS_META: str(n_parts)})
+        schema = TABLE_SCHEMA.with_metadata({BUCKET_META: str(index), BUCKETS_META: str(n_parts),
+                                             KEYS_META: keys_digest(t_dir, t_src, t_tgt)})
         table = pa.Table.from_arrays([pa.array(t_dir), pa.array(t_src), pa.array(t_tgt), pa.array(prob)],
                                      schema=schema)
         fs, root = fsspec.core.url_to_fs(lex_url)

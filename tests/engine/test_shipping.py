@@ -84,6 +84,55 @@ def test_workers_read_the_reducers_files_with_their_buckets(tmp_path):
         assert "_bucket_order" not in old[d].__dict__ and np.array_equal(old[d].keys, whole[d].keys)
 
 
+def test_a_table_with_the_same_keys_is_read_as_probabilities_only(tmp_path):
+    """The next table with the same keys (equal key digests in the files' metadata) shares the previous
+    table's keys and merge and reads only its probabilities; the result equals a whole read. A table
+    whose keys differ is not taken for one."""
+    from spark_align.engine import estep, mstep
+    from spark_align.kernels import counts
+
+    rng = np.random.default_rng(5)
+    n = 5000
+    dirs = rng.integers(0, 2, n).astype(np.int8)
+    src, tgt = rng.integers(0, 300, n).astype(np.int32), rng.integers(0, 250, n).astype(np.int32)
+    dirs_ = ("forward", "reverse")
+
+    def write_table(name, keep):
+        buffer = counts.CountBuffer()
+        mstep.fold_rows(buffer, dirs[keep], src[keep], tgt[keep], *estep.to_fixed(rng.random(int(keep.sum()))))
+        lex = tmp_path / name
+        reduce = mstep.make_reducer(str(lex), 3, min_prob=tables.MIN_PROB, prune_below=None)
+        by_bucket: dict[int, list] = {}
+        for bucket, data in mstep.payloads(buffer, 3):
+            by_bucket.setdefault(bucket, []).append((bucket, data))
+        for index in range(3):
+            list(reduce(index, iter(by_bucket.get(index, []))))
+        return str(lex)
+
+    everything = np.ones(n, bool)
+    first, second = write_table("a", everything), write_table("b", everything)
+    fewer = write_table("c", rng.random(n) < 0.9)
+    layout_a = tables.TableLayout.read(first)
+    tables.read_worker_tables(first, dirs_, layout=layout_a)
+    layout_b, layout_c = tables.TableLayout.read(second), tables.TableLayout.read(fewer)
+    assert layout_a.same_keys(layout_b, dirs_) and not layout_a.same_keys(layout_c, dirs_)
+    got = tables.read_worker_tables(second, dirs_, layout=layout_b, previous=layout_a)
+    whole = tables.tables_from_arrow(tables.read_table_arrow(second), dirs_)
+    for i, d in enumerate(dirs_):
+        assert np.array_equal(got[d].keys, whole[d].keys) and np.array_equal(got[d].probs, whole[d].probs)
+        assert not np.array_equal(got[d].probs, tables.read_worker_tables(first, dirs_)[d].probs)
+        for a, b in zip(got[d].bucket_order(i, 3), whole[d].bucket_order(i, 3)):
+            assert np.array_equal(a, b)
+    # Through TableSource, as E-step tasks see it: the second read reuses the first's keys.
+    one = tables.TableSource(first, dirs_, (300, 250), "t1").value
+    two = tables.TableSource(second, dirs_, (300, 250), "t2").value
+    assert two["forward"].keys is one["forward"].keys
+    three = tables.TableSource(fewer, dirs_, (300, 250), "t3").value
+    want = tables.tables_from_arrow(tables.read_table_arrow(fewer), dirs_)
+    for d in dirs_:
+        assert np.array_equal(three[d].keys, want[d].keys) and np.array_equal(three[d].probs, want[d].probs)
+
+
 def test_shipping_is_not_part_of_the_resume_key_but_pruning_is():
     c = CorpusConfig(path="x.parquet")
     base = RunConfig(corpus=c).training_key()
