@@ -36,10 +36,51 @@ def reduce_sorted(keys: np.ndarray, hi: np.ndarray, lo: np.ndarray):
     """Sum ``hi`` and ``lo`` per distinct key; returns (unique keys ascending, hi sums, lo sums)."""
     if len(keys) == 0:
         return keys.astype(np.int64), hi.astype(np.int64), lo.astype(np.int64)
-    order = np.argsort(keys, kind="stable")
-    k = keys[order]
-    starts = np.flatnonzero(np.concatenate([[True], k[1:] != k[:-1]]))
-    return k[starts], np.add.reduceat(hi[order], starts), np.add.reduceat(lo[order], starts)
+    # Rows arrive as a few sorted runs (payloads, earlier folds): merged and summed in one compiled
+    # pass over the runs, with no sort and no scattered reads (numpy's argsort, gathers and reduceat
+    # took 8x longer on 12M rows). Many runs: a stable sort orders the rows first.
+    starts = np.concatenate([[0], np.flatnonzero(keys[1:] < keys[:-1]) + 1]).astype(np.int64)
+    ends = np.append(starts[1:], len(keys)).astype(np.int64)
+    args = (np.ascontiguousarray(keys, np.int64), np.ascontiguousarray(hi, np.int64),
+            np.ascontiguousarray(lo, np.int64))
+    if len(starts) > MERGE_RUNS:
+        order = np.argsort(keys, kind="stable")
+        args = tuple(a[order] for a in args)
+        starts, ends = np.zeros(1, np.int64), np.full(1, len(keys), np.int64)
+    out = tuple(np.empty(len(keys), np.int64) for _ in range(3))
+    m = _merge_runs(*args, starts, ends, *out)
+    return tuple(a[:m] for a in out)
+
+
+MERGE_RUNS = 16  # at most this many sorted runs are merged directly
+
+
+@njit(cache=True, nogil=True)
+def _merge_runs(keys, hi, lo, starts, ends, out_keys, out_hi, out_lo):  # pragma: no cover
+    pos = starts.copy()
+    m = -1
+    while True:
+        best = -1
+        best_key = np.int64(0)
+        for r in range(len(pos)):
+            if pos[r] < ends[r]:
+                k = keys[pos[r]]
+                if best < 0 or k < best_key:
+                    best = r
+                    best_key = k
+        if best < 0:
+            break
+        j = pos[best]
+        pos[best] += 1
+        if m >= 0 and out_keys[m] == best_key:
+            out_hi[m] += hi[j]
+            out_lo[m] += lo[j]
+        else:
+            m += 1
+            out_keys[m] = best_key
+            out_hi[m] = hi[j]
+            out_lo[m] = lo[j]
+    return m + 1
 
 
 class CountBuffer:
