@@ -121,6 +121,8 @@ def _child_train(args) -> None:
                      "estep_task_seconds": m["metrics"][dirs[0]].get("estep_task_seconds", 0.0),
                      **{f"{part}_seconds": m["metrics"][dirs[0]].get(f"{part}_seconds", 0.0) for part in PARTS},
                      "reduce_task_seconds": m["metrics"][dirs[0]].get("reduce_task_seconds", 0.0),
+                     **{key: sum(m["metrics"][d].get(key, 0.0) for d in dirs)
+                        for key in ("lookup_keys_searched", "lookup_keys")},
                      "links": sum(m["metrics"][d]["links"] for d in dirs),
                      "shipping": m["metrics"][dirs[0]].get("shipping"),
                      "table_entries": m["metrics"][dirs[0]].get("table_entries"),

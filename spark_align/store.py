@@ -6,6 +6,7 @@ Layout of ``RUN_DIR`` (a local path or any URL both Spark and fsspec understand)
     corpus/                           snapshot of the input rows + ``_row`` (Parquet)
     vocab/source/, vocab/target/      word, id, count (Parquet)
     encoded/blocks/                   encoded blocks (Parquet) + encoded.json
+    encoded/hints/                    lookup hints per row group of blocks (a checked cache, ``engine.hints``)
     checkpoints/SS-MODEL/iter-NNNN/   lex/ (Parquet table) + manifest.json
     output/                           the output corpus (Parquet) + output.json
 

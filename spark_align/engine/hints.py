@@ -30,15 +30,16 @@ def hints_path(root: str, direction: str, blocks_file: str, row_group: int) -> s
     return posixpath.join(root, direction, f"{posixpath.basename(blocks_file)}.rg{row_group:05d}")
 
 
-def read(fs, root: str, direction: str, blocks_file: str, row_group: int, n_keys: int) -> np.ndarray | None:
+def read(fs, root: str, direction: str, blocks_file: str, row_group: int,
+         n_keys: int | None = None) -> np.ndarray | None:
     """The stored insertion points of a row group's ``n_keys`` dictionary keys, or None if there are
-    none usable (absent, unreadable, or not ``n_keys`` long)."""
+    none usable (absent, unreadable, or not ``n_keys`` long; None: any length)."""
     try:
         with fs.open(hints_path(root, direction, blocks_file, row_group), "rb") as fh:
             points = decode_hints(fh.read())
     except (OSError, ValueError):
         return None
-    return points if len(points) == n_keys else None
+    return points if n_keys is None or len(points) == n_keys else None
 
 
 def write(fs, root: str, direction: str, blocks_file: str, row_group: int, points: np.ndarray) -> None:

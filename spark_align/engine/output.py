@@ -101,15 +101,21 @@ ALL_LINKS_THRESHOLD = 1e-4  # posteriors below this count as 0 when directions a
 
 def make_decoder(model, directions: tuple[str, ...], tables_bc, dense: dict, *, method: str,
                  threshold: float, symmetrization: str):
-    def decode(batches):
+    def decode(batches, hints: dict | None = None):
+        """Decoder rows for blocks; ``hints``: direction -> stored lookup hints of these blocks'
+        dictionaries, concatenated in block order (``engine.hints``; checked, so never trusted)."""
         tables = tables_bc.value
+        offset = 0
         for batch in batches:
             for _block_id, rows, block in blocks_from_batch(batch):
                 n = block.n_pairs
+                n_keys = len(block.dict_keys)
                 links, every, scores = {}, {}, {}
                 for direction in directions:
                     view = block.view(direction)
-                    t_local = tables[direction].local(block.dict_keys)
+                    h = (hints or {}).get(direction)
+                    h = h[offset:offset + n_keys] if h is not None and offset + n_keys <= len(h) else None
+                    t_local = tables[direction].find_hinted(block.dict_keys, h)[1]
                     chosen, all_links, loglik = decode_all(
                         model, view, t_local, dense[direction], method=method, threshold=threshold,
                         every_threshold=ALL_LINKS_THRESHOLD if len(directions) == 2 else None)
@@ -122,6 +128,7 @@ def make_decoder(model, directions: tuple[str, ...], tables_bc, dense: dict, *, 
                                   symmetrization, threshold)
                 else:
                     sym = links[directions[0]]
+                offset += n_keys
                 empty = (np.zeros(0, np.int64),) * 3 + (np.zeros(0),)
                 nan = np.full(n, np.nan)
                 yield pa.RecordBatch.from_arrays([
@@ -140,19 +147,24 @@ def make_decoder(model, directions: tuple[str, ...], tables_bc, dense: dict, *, 
 UNITS_PER_CORE = 4  # decoding tasks per core: several, so the cores stay busy to the end
 
 
-def decode_units(decoder, blocks_url: str):
+def decode_units(decoder, blocks_url: str, hints_url: str | None = None, directions: tuple[str, ...] = ()):
     """``mapInArrow`` function: (path, row_group) rows -> the decoder's rows for those row groups of
-    encoded blocks, read with pyarrow through fsspec (as the E-step reads them)."""
+    encoded blocks, read with pyarrow through fsspec (as the E-step reads them), with the row groups'
+    stored lookup hints under ``hints_url`` where there are any (the last E-step's, for the same keys)."""
 
     def decode(batches):
         import fsspec
 
+        from spark_align.engine import hints
         from spark_align.engine.mstep import read_unit
 
         fs, _root = fsspec.core.url_to_fs(blocks_url)
+        hints_fs, hints_root = fsspec.core.url_to_fs(hints_url) if hints_url else (None, None)
         for batch in batches:
             for path, row_group in zip(batch.column(0).to_pylist(), batch.column(1).to_pylist()):
-                yield from decoder(read_unit(fs, path, row_group))
+                stored = {} if hints_fs is None else {
+                    d: hints.read(hints_fs, hints_root, d, path, row_group) for d in directions}
+                yield from decoder(read_unit(fs, path, row_group), {d: h for d, h in stored.items() if h is not None})
 
     return decode
 
@@ -174,7 +186,8 @@ def write_output(spark, store: RunStore, decoder, *, checkpoint: str, directions
     sc = spark.sparkContext
     units_df = sc.parallelize(units, max(1, min(len(units), UNITS_PER_CORE * sc.defaultParallelism))).toDF(
         "path string, row_group int")
-    decoded = units_df.mapInArrow(decode_units(decoder, fsspec_url(store.spark_path("encoded", "blocks"))),
+    decoded = units_df.mapInArrow(decode_units(decoder, fsspec_url(store.spark_path("encoded", "blocks")),
+                                               fsspec_url(store.spark_path("encoded", "hints")), tuple(directions)),
                                   DECODED_SCHEMA)
     if len(directions) == 1:
         other = "alignment_reverse" if directions[0] == "forward" else "alignment_forward"

@@ -147,6 +147,33 @@ def test_stored_lookup_hints_are_checked_and_never_change_results(spark, tmp_pat
     third = searched(resumed, 3)
     assert third["forward"] == 1.0 and third["reverse"] == pytest.approx(0.5, abs=0.01)
     assert searched(resumed, 4) == {"forward": 0.0, "reverse": 0.0}  # stored again by iteration 3
+    a, b = read_output(straight), read_output(resumed)
+    assert a.column("alignment").equals(b.column("alignment"))
+
+    # The output pass's decoder gives the same rows with right, wrong or no hints.
+    import fsspec
+
+    from spark_align.engine import hints, mstep, output, tables
+    from spark_align.models.ibm1 import IBM1
+    from spark_align.store import RunStore
+
+    store = RunStore(straight)
+    (path, row_group), = mstep.block_units(store)
+    lex = os.path.join(straight, "checkpoints", "00-ibm1", "iter-0004", "lex")
+    n_src, n_tgt = (len(vocab_words(straight, side)) + 1 for side in ("source", "target"))
+    source = tables.table_source(lex, ("forward", "reverse"), n_src, n_tgt)
+    model = IBM1()
+    decode = output.make_decoder(model, ("forward", "reverse"), source, {d: model.init_dense(None) for d in
+                                 ("forward", "reverse")}, method="viterbi", threshold=0.5,
+                                 symmetrization="grow-diag-final-and")
+    fs = fsspec.filesystem("file")
+    right = {d: hints.read(fs, os.path.join(straight, "encoded", "hints"), d, path, row_group)
+             for d in ("forward", "reverse")}
+    assert all(h is not None for h in right.values())
+    wrong = {d: h[::-1].copy() for d, h in right.items()}
+    runs = [pa.Table.from_batches(list(decode(mstep.read_unit(fs, path, row_group), h)))
+            for h in (None, right, wrong)]
+    assert runs[0].num_rows > 0 and runs[0].equals(runs[1]) and runs[0].equals(runs[2])
 
 
 def test_parquet_corpus_with_id_and_renamed_columns(spark, tmp_path):
