@@ -50,7 +50,9 @@ def init_table(spark, blocks_df, directions, init: str, seed: int, src_vocab: in
     from pyspark.sql import Window
     from pyspark.sql import functions as F
 
-    keys = blocks_df.select(F.explode("dict_keys").alias("key")).distinct()
+    from spark_align.engine.ingest import DICT_ENTRIES_SCHEMA, dict_entries
+
+    keys = blocks_df.mapInArrow(dict_entries, DICT_ENTRIES_SCHEMA).select("key").distinct()
     keys = keys.select(F.shiftright(F.col("key"), 32).cast("int").alias("src"),
                        (F.col("key").bitwiseAND(F.lit(0xFFFFFFFF))).cast("int").alias("tgt"))
     frames = []

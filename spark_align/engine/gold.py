@@ -35,7 +35,8 @@ import pyarrow as pa
 
 from spark_align import evaluate as ev
 from spark_align.config import CorpusConfig, RunConfig
-from spark_align.engine.ingest import BLOCK_SCHEMA, MONO_PARTITION_SHIFT, ROW, blocks_from_batch, block_id_of
+from spark_align.engine.ingest import (BLOCK_SCHEMA, MONO_PARTITION_SHIFT, ROW, block_batch, block_id_of,
+                                       blocks_from_batch)
 from spark_align.engine.tables import DirectionTable, tables_from_arrow
 from spark_align.errors import ConfigError, InputError
 from spark_align.kernels import ragged
@@ -144,20 +145,9 @@ def _subset_blocks(block_size: int, gold_rows: np.ndarray):
                 tgt_tok = keep[ragged.row_of(block.tgt_offsets)]
                 sub = ragged.build_block(ragged.offsets_from_lengths(src_len[keep]), block.src_ids[src_tok],
                                          ragged.offsets_from_lengths(tgt_len[keep]), block.tgt_ids[tgt_tok])
-                yield pa.RecordBatch.from_pylist([{
-                    "block_id": block_id, "rows": rows[keep].tolist(),
-                    "src_len": src_len[keep].astype(np.int32).tolist(), "src_ids": sub.src_ids.tolist(),
-                    "tgt_len": tgt_len[keep].astype(np.int32).tolist(), "tgt_ids": sub.tgt_ids.tolist(),
-                    "dict_keys": sub.dict_keys.tolist(), "grid": sub.grid.tolist()}],
-                    schema=_BLOCK_ARROW_SCHEMA)
+                yield block_batch(block_id, rows[keep], sub)
 
     return run
-
-
-_BLOCK_ARROW_SCHEMA = pa.schema([
-    ("block_id", pa.int64()), ("rows", pa.list_(pa.int64())), ("src_len", pa.list_(pa.int32())),
-    ("src_ids", pa.list_(pa.int32())), ("tgt_len", pa.list_(pa.int32())), ("tgt_ids", pa.list_(pa.int32())),
-    ("dict_keys", pa.list_(pa.int64())), ("grid", pa.list_(pa.int32()))])
 
 
 class GoldMonitor:
@@ -169,7 +159,8 @@ class GoldMonitor:
 
         self.spark, self.cfg, self.gold = spark, cfg, gold
         self.blocks, self.key_of_row, self.n_missing = blocks, key_of_row, n_missing
-        keys = (np.unique(np.concatenate([np.asarray(k, np.int64) for k in blocks.column("dict_keys").to_pylist()]))
+        keys = (np.unique(np.concatenate([block.dict_keys for batch in blocks.to_batches()
+                                          for _id, _rows, block in blocks_from_batch(batch)]))
                 if blocks.num_rows else np.zeros(0, np.int64))
         src, tgt = ragged.split_key(keys)
         self._keys_frame = spark.createDataFrame(

@@ -15,6 +15,12 @@ Costs and invariants:
   each block carries its own pair dictionary and link grid
   (see ``spark_align.kernels.ragged``): 4 bytes per link cell on disk, built
   once here so that no E-step ever sorts or hashes.
+* The two big arrays of a block, ``dict_keys`` (int64) and ``grid`` (int32),
+  are stored as one binary value each (the array's little-endian bytes), not
+  as Parquet lists: a list carries repetition and definition levels for every
+  element, and decoding them cost more than the data (reading a row group of
+  blocks took 2-3x longer). Blocks written as lists by earlier versions are
+  still read (:func:`block_array`).
 """
 from __future__ import annotations
 
@@ -36,7 +42,9 @@ RESERVED_COLUMNS = (ROW, "alignment", "alignment_forward", "alignment_reverse", 
 MONO_PARTITION_SHIFT = 33  # monotonically_increasing_id puts the partition index above bit 33
 
 BLOCK_SCHEMA = ("block_id long, rows array<long>, src_len array<int>, src_ids array<int>, "
-                "tgt_len array<int>, tgt_ids array<int>, dict_keys array<long>, grid array<int>")
+                "tgt_len array<int>, tgt_ids array<int>, dict_keys binary, grid binary")
+# Element types of the columns stored as binary values (little-endian array bytes).
+BLOB_DTYPES = {"dict_keys": np.dtype("<i8"), "grid": np.dtype("<i4")}
 TOKENS_SCHEMA = "_row long, skip_reason string, src array<string>, tgt array<string>"
 
 
@@ -232,21 +240,49 @@ def _build_block_table(table: pa.Table) -> pa.Table:
     block = ragged.build_block(_offsets(src), src.flatten().to_numpy(), _offsets(tgt), tgt.flatten().to_numpy())
     if np.any(block.grid < 0) or len(block.dict_keys) > np.iinfo(np.int32).max:
         raise ValueError("block dictionary overflow")
-    return pa.table({
-        "block_id": [table.column("block_id")[0].as_py()],
-        "rows": [table.column("_row").to_numpy()],
-        "src_len": [np.diff(block.src_offsets).astype(np.int32)],
-        "src_ids": [block.src_ids],
-        "tgt_len": [np.diff(block.tgt_offsets).astype(np.int32)],
-        "tgt_ids": [block.tgt_ids],
-        "dict_keys": [block.dict_keys],
-        "grid": [block.grid],
-    })
+    return pa.Table.from_batches([block_batch(table.column("block_id")[0].as_py(), table.column("_row").to_numpy(),
+                                              block)])
+
+
+BLOCK_ARROW_SCHEMA = pa.schema([
+    ("block_id", pa.int64()), ("rows", pa.list_(pa.int64())), ("src_len", pa.list_(pa.int32())),
+    ("src_ids", pa.list_(pa.int32())), ("tgt_len", pa.list_(pa.int32())), ("tgt_ids", pa.list_(pa.int32())),
+    ("dict_keys", pa.binary()), ("grid", pa.binary())])
+
+
+def block_batch(block_id: int, rows: np.ndarray, block: ragged.Block) -> pa.RecordBatch:
+    """One block as a one-row batch of ``BLOCK_SCHEMA`` (what ingestion writes, and the gold subset)."""
+    def one_list(values: np.ndarray, kind) -> pa.ListArray:
+        return pa.ListArray.from_arrays(pa.array([0, len(values)], pa.int32()), pa.array(values, kind))
+
+    blob = {name: pa.array([np.ascontiguousarray(arr, dtype).tobytes()], pa.binary())
+            for (name, dtype), arr in zip(BLOB_DTYPES.items(), (block.dict_keys, block.grid))}
+    return pa.RecordBatch.from_arrays([
+        pa.array([block_id], pa.int64()), one_list(np.asarray(rows, np.int64), pa.int64()),
+        one_list(np.diff(block.src_offsets).astype(np.int32), pa.int32()), one_list(block.src_ids, pa.int32()),
+        one_list(np.diff(block.tgt_offsets).astype(np.int32), pa.int32()), one_list(block.tgt_ids, pa.int32()),
+        blob["dict_keys"], blob["grid"]], schema=BLOCK_ARROW_SCHEMA)
 
 
 def _offsets(lists: pa.ListArray) -> np.ndarray:
     off = lists.offsets.to_numpy().astype(np.int64)
     return off - off[0]
+
+
+def block_array(column: pa.Array, k: int, name: str) -> np.ndarray:
+    """Row ``k`` of a block column as a numpy array (zero-copy where aligned): a binary value
+    (``BLOB_DTYPES``) or, as earlier versions wrote every column, a list."""
+    if pa.types.is_binary(column.type) or pa.types.is_large_binary(column.type):
+        dtype = BLOB_DTYPES[name]
+        value = column[k]
+        if not value.is_valid:
+            return np.zeros(0, dtype)
+        out = np.frombuffer(value.as_buffer(), dtype)
+        if out.ctypes.data % dtype.itemsize:
+            out = out.copy()  # compiled kernels want aligned arrays
+        return out.astype(dtype.newbyteorder("="), copy=False)
+    start, stop = column.offsets[k].as_py(), column.offsets[k + 1].as_py()
+    return column.values.slice(start, stop - start).to_numpy()
 
 
 def blocks_from_batch(batch: pa.RecordBatch) -> list[tuple[int, np.ndarray, ragged.Block]]:
@@ -255,9 +291,7 @@ def blocks_from_batch(batch: pa.RecordBatch) -> list[tuple[int, np.ndarray, ragg
     out = []
     for k in range(batch.num_rows):
         def arr(name: str) -> np.ndarray:
-            lists = cols[name]
-            start, stop = lists.offsets[k].as_py(), lists.offsets[k + 1].as_py()
-            return lists.values.slice(start, stop - start).to_numpy()
+            return block_array(cols[name], k, name)
 
         src_len, tgt_len = arr("src_len"), arr("tgt_len")
         block = ragged.Block(ragged.offsets_from_lengths(src_len), arr("src_ids"),
@@ -267,6 +301,21 @@ def blocks_from_batch(batch: pa.RecordBatch) -> list[tuple[int, np.ndarray, ragg
                              arr("grid"))
         out.append((cols["block_id"][k].as_py(), arr("rows"), block))
     return out
+
+
+def dict_entries(batches):
+    """``mapInArrow`` function: block rows -> (block_id, idx, key), one row per dictionary entry
+    (``dict_keys`` is a binary value, which Spark SQL cannot explode)."""
+    for batch in batches:
+        cols = {name: batch.column(i) for i, name in enumerate(batch.schema.names)}
+        for k in range(batch.num_rows):
+            keys = block_array(cols["dict_keys"], k, "dict_keys")
+            yield pa.RecordBatch.from_arrays(
+                [pa.array(np.full(len(keys), cols["block_id"][k].as_py(), np.int64)),
+                 pa.array(np.arange(len(keys), dtype=np.int32)), pa.array(keys)], names=["block_id", "idx", "key"])
+
+
+DICT_ENTRIES_SCHEMA = "block_id long, idx int, key long"
 
 
 PAIRS_PER_ROW_GROUP = 8192  # encoded blocks per Parquet row group = this // block size (at least 1)

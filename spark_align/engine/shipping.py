@@ -14,7 +14,7 @@ whatever the partition holds; the driver holds none of it.
 ``join`` (this module; distributed EM after Wolfe, Haghighi & Klein 2008):
 each block receives only the entries of its own dictionary, through Spark's
 shuffle. The *block dictionary* ``(block_id, idx, key)`` -- every block's
-``dict_keys`` exploded, ``idx`` its position -- is written once per run under
+``dict_keys`` exploded (``ingest.dict_entries``), ``idx`` its position -- is written once per run under
 ``encoded/block_dict`` (on first use). Per iteration::
 
     params = block_dict JOIN table ON key            -> (block_id, idx, dir, prob)
@@ -41,7 +41,7 @@ import pyarrow as pa
 
 from spark_align.config import SHIPPINGS as SHIPPING_MODES
 from spark_align.engine.estep import STATS_SCHEMA, _maybe_fail, block_rows, note_task_memory, rows_batch
-from spark_align.engine.ingest import blocks_from_batch
+from spark_align.engine.ingest import DICT_ENTRIES_SCHEMA, blocks_from_batch, dict_entries
 from spark_align.engine.tables import DIRS, MIN_PROB
 
 BYTES_PER_ENTRY = 48  # per Python worker per entry on the whole-table path (see the module docstring)
@@ -79,13 +79,9 @@ def table_entries(spark, table_path: str) -> int:
 
 def block_dict_frame(spark, store, blocks_df):
     """The exploded block dictionaries (block_id, idx, key), written once under ``encoded/block_dict``."""
-    from pyspark.sql import functions as F
-
     path = store.spark_path(*BLOCK_DICT)
     if not store.exists(*BLOCK_DICT, "_SUCCESS"):  # Spark writes _SUCCESS last: absent means unfinished
-        (blocks_df.select("block_id", F.posexplode("dict_keys").alias("idx", "key"))
-         .select("block_id", F.col("idx").cast("int").alias("idx"), "key")
-         .write.mode("overwrite").parquet(path))
+        blocks_df.mapInArrow(dict_entries, DICT_ENTRIES_SCHEMA).write.mode("overwrite").parquet(path)
     return spark.read.parquet(path)
 
 
