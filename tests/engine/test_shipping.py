@@ -13,6 +13,7 @@ from spark_align.config import CorpusConfig, RunConfig
 from spark_align.corpus import synthetic
 from spark_align.engine import em, ingest, shipping, tables
 from spark_align.engine.run import train
+from spark_align.errors import ConfigError
 from spark_align.kernels import ragged
 from spark_align.store import RunStore
 from tests.engine.helpers import TOY_SOURCE, TOY_TARGET, config, manifest, read_table, write_parquet, write_text
@@ -176,6 +177,18 @@ def test_join_and_broadcast_shipping_give_bit_identical_tables_and_pruning(spark
     want = _retrain(spark, base, str(tmp_path / "broadcast"), cfg)
     base_broadcast = str(tmp_path / "broadcast")
     assert len(want) == 3
+
+    # One E-step task per core instead of two: other task boundaries, the same tables bit for bit.
+    spark.conf.set(em.TASKS_PER_CORE_CONF, "1")
+    try:
+        one_per_core = _retrain(spark, base, str(tmp_path / "one-per-core"), cfg)
+    finally:
+        spark.conf.unset(em.TASKS_PER_CORE_CONF)
+    assert sorted(one_per_core) == sorted(want) and all(one_per_core[k].equals(want[k]) for k in want)
+    with pytest.raises(ConfigError, match="estepTasksPerCore must be a whole number"):
+        em.tasks_per_core("0")
+    with pytest.raises(ConfigError, match="estepTasksPerCore must be a whole number"):
+        em.tasks_per_core("two")
 
     # auto with a budget one entry too small for the first table -> join for every later iteration;
     # with pruning at 0, which removes nothing (every entry is >= 1e-12), through the pruning path
