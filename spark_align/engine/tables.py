@@ -61,17 +61,12 @@ class DirectionTable:
 
     def find(self, dict_keys: np.ndarray) -> tuple[tuple[np.ndarray, np.ndarray] | None, np.ndarray]:
         """(:meth:`positions`, :meth:`local`) in one pass over the table."""
-        if self.constant is not None:
-            return None, np.full(len(dict_keys), self.constant)
-        from spark_align.kernels.lookup import find
-
-        pos, hit, probs = find(self.keys, self.probs, dict_keys, MIN_PROB)
-        return (pos, hit), probs
+        return self.find_hinted(dict_keys, None)[:2]
 
     def find_hinted(self, dict_keys: np.ndarray, hints: np.ndarray | None):
-        """:meth:`find` starting from stored hints (``engine.hints``); also returns the insertion points
-        (the next hints) and how many keys had to be searched for. A constant table has no positions:
-        (None, probabilities, None, 0)."""
+        """:meth:`find` starting from stored hints (``engine.hints``; None: none); also returns the
+        insertion points (the next hints) and how many keys had to be searched for. A constant table
+        has no positions: (None, probabilities, None, 0)."""
         if self.constant is not None:
             return None, np.full(len(dict_keys), self.constant), None, 0
         from spark_align.kernels.lookup import find_hinted
