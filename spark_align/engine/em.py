@@ -154,8 +154,7 @@ class Trainer:
                                          self.store.spark_path(rel, "lex")):
             summaries = mstep.reduce_and_write(
                 sc, pairs, n_parts, fsspec_url(self.store.spark_path(rel, "lex")), min_prob=tables_mod.MIN_PROB,
-                prune_below=self.cfg.prune_below,
-                previous_url=None if state.table_path is None else fsspec_url(state.table_path))
+                prune_below=self.cfg.prune_below)
         job_seconds = time.perf_counter() - started
         self.store.remove(rel, "lex", "_temporary")
         sums = mstep.combine(summaries, self.directions, prune_below=self.cfg.prune_below)
@@ -180,8 +179,6 @@ class Trainer:
                           "lookup_keys_searched": sums[d]["scalar"].get(9, 0.0),
                           "lookup_keys": sums[d]["scalar"].get(10, 0.0),
                           "reduce_task_seconds": float(sum(s["seconds"] for s in summaries)),
-                          # rows of counts that reached the reducers as rows of the table files
-                          "positional_rows": int(sum(s.get("positional_rows", 0) for s in summaries)),
                           "job_seconds": job_seconds, "reducers": n_parts,
                           "shipping": path, "table_entries": n_entries, "new_table_entries": sums[d]["entries"]}
             if sums[d]["pruned"] is not None:

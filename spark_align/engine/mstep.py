@@ -65,9 +65,8 @@ class TaskCounts:
     that has a table, on top of the table itself.
     """
 
-    def __init__(self, tables: dict, positional: bool = True) -> None:
+    def __init__(self, tables: dict) -> None:
         self.tables = tables
-        self.positional = positional  # positional payloads where possible (see payloads)
         self.buffer = counts.CountBuffer()
         self.acc: dict[int, tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
 
@@ -98,21 +97,10 @@ class TaskCounts:
         return self.acc[d]
 
     def payloads(self, n_buckets: int):
-        """(bucket, bytes) records: every count of this task, at most two records per non-empty bucket.
-
-        Where the table was read from reducer files that are exactly these buckets (the same number
-        of reducers as last iteration, ``engine.tables.read_worker_tables``), the accumulated counts
-        leave as positional rows, (row of that file, hi, lo), tagged with the file's key digest: the
-        reducer adds them into arrays aligned with the file, with no key to merge. Otherwise, and for
-        everything in the buffer, rows carry their keys.
-        """
+        """(bucket, bytes) records: every count of this task, one record per non-empty bucket."""
         by_bucket: dict[int, list] = {}
         for bucket, part in _split_arrays(*self.buffer.result(), n_buckets):
             by_bucket.setdefault(bucket, []).append(part)
-        files = {d: self.tables[DIRS[d]].__dict__.get("_files") for d in self.acc}
-        positional = self.positional and all(f is not None and f["n"] == n_buckets and all(f["digests"])
-                                             for f in files.values())
-        by_file: dict[int, list] = {}
         for d, (acc, touched, table_keys) in sorted(self.acc.items()):
             # Cost follows the table (a gather of one byte per entry) and the entries this task touched;
             # the grouping by bucket is the table's, computed once per Python worker.
@@ -120,20 +108,12 @@ class TaskCounts:
             touched_in_order = touched[order]
             shift = (np.int64(d) << 62) + (np.int64(2) << 32)  # table key (src << 32 | tgt) -> row key
             for b in range(n_buckets):
-                k = np.flatnonzero(touched_in_order[bounds[b]:bounds[b + 1]])
-                if not len(k):
-                    continue
-                idx = order[bounds[b] + k]
-                if positional:  # row of file b: its rows of direction d start at spans[b][0]
-                    by_file.setdefault(b, []).append((k + files[d]["spans"][b][0], acc[idx, 0], acc[idx, 1]))
-                else:
+                idx = order[bounds[b] + np.flatnonzero(touched_in_order[bounds[b]:bounds[b + 1]])]
+                if len(idx):
                     by_bucket.setdefault(b, []).append((table_keys[idx] + shift, acc[idx, 0], acc[idx, 1]))
-        for bucket in sorted(set(by_bucket) | set(by_file)):
-            if bucket in by_bucket:
-                yield bucket, encode(*(np.concatenate(x) for x in zip(*by_bucket[bucket])))
-            if bucket in by_file:
-                digest = next(iter(files.values()))["digests"][bucket]
-                yield bucket, encode(*(np.concatenate(x) for x in zip(*by_file[bucket])), file_keys=digest)
+        for bucket in sorted(by_bucket):
+            keys, hi, lo = (np.concatenate(x) for x in zip(*by_bucket[bucket]))
+            yield bucket, encode(keys, hi, lo)
 
 
 def _split_arrays(keys, hi, lo, n_buckets: int):
@@ -154,75 +134,22 @@ def _groups(bucket: np.ndarray):
         yield int(bucket[part[0]]), part
 
 
-_FILE_KEYS_META = b"spark_align.file_keys"  # payload schema metadata: positional rows of the file with this digest
-
-
-def encode(keys: np.ndarray, hi: np.ndarray, lo: np.ndarray, *, file_keys: bytes | None = None) -> bytes:
+def encode(keys: np.ndarray, hi: np.ndarray, lo: np.ndarray) -> bytes:
     """Rows as compressed Arrow IPC bytes: keys delta-coded (payloads are a few sorted runs, so the
     deltas are small numbers), every buffer zstd-compressed. About 2.5x fewer bytes to shuffle than
-    the raw 24 bytes per row; exact (integer deltas, undone by a cumulative sum). ``file_keys``: the
-    "keys" are ascending rows of the table file with that key digest (positional rows)."""
+    the raw 24 bytes per row; exact (integer deltas, undone by a cumulative sum)."""
     deltas = np.diff(keys, prepend=np.int64(0))
-    schema = _PAYLOAD_SCHEMA if file_keys is None else _PAYLOAD_SCHEMA.with_metadata({_FILE_KEYS_META: file_keys})
-    batch = pa.RecordBatch.from_arrays([pa.array(deltas), pa.array(hi), pa.array(lo)], schema=schema)
+    batch = pa.RecordBatch.from_arrays([pa.array(deltas), pa.array(hi), pa.array(lo)], schema=_PAYLOAD_SCHEMA)
     sink = pa.BufferOutputStream()
-    with pa.ipc.new_stream(sink, schema, options=_IPC_OPTIONS) as writer:
+    with pa.ipc.new_stream(sink, _PAYLOAD_SCHEMA, options=_IPC_OPTIONS) as writer:
         writer.write_batch(batch)
     return sink.getvalue().to_pybytes()
 
 
-def decode_payload(data) -> tuple[np.ndarray, np.ndarray, np.ndarray, bytes | None]:
-    """(keys or file rows, hi, lo, the file's key digest for positional rows else None)."""
+def decode(data) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     table = pa.ipc.open_stream(pa.py_buffer(bytes(data) if isinstance(data, bytearray) else data)).read_all()
     deltas, hi, lo = (table.column(i).to_numpy() for i in range(3))
-    return np.cumsum(deltas, dtype=np.int64), hi, lo, (table.schema.metadata or {}).get(_FILE_KEYS_META)
-
-
-def decode(data) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Keyed rows of a payload (:func:`encode` undone)."""
-    keys, hi, lo, file_keys = decode_payload(data)
-    if file_keys is not None:
-        raise ValueError("positional payload where keyed rows were expected")
-    return keys, hi, lo
-
-
-class _FileCounts:
-    """Positional rows of one reducer, added into arrays aligned with the previous table's file of its
-    bucket, whose keys they refer to (checked by digest)."""
-
-    def __init__(self, previous_url: str | None, index: int, n_parts: int, digest: bytes) -> None:
-        import fsspec
-
-        if previous_url is None:
-            raise RuntimeError("positional counts reached a reducer that was given no previous table")
-        fs, root = fsspec.core.url_to_fs(previous_url)
-        with fs.open(posixpath.join(root, part_name(index)), "rb") as fh:
-            part = pq.read_table(fh, columns=["dir", "src", "tgt"])
-        meta = part.schema.metadata or {}
-        if (meta.get(KEYS_META) != digest or meta.get(BUCKET_META) != str(index).encode()
-                or meta.get(BUCKETS_META) != str(n_parts).encode()):
-            raise RuntimeError(f"positional counts for {posixpath.join(previous_url, part_name(index))}, "
-                               "but that file is not the one the E-step read")
-        self.digest = digest
-        self.dirs, self.src, self.tgt = (part.column(i).to_numpy() for i in range(3))
-        n = len(self.dirs)
-        self.hi, self.lo, self.present = np.zeros(n, np.int64), np.zeros(n, np.int64), np.zeros(n, bool)
-        self.n_rows = 0
-
-    def add(self, rows: np.ndarray, hi: np.ndarray, lo: np.ndarray, digest: bytes) -> None:
-        if digest != self.digest:
-            raise RuntimeError("positional counts for two different table files in one reducer")
-        if len(rows) and (rows[0] < 0 or rows[-1] >= len(self.hi) or np.any(np.diff(rows) <= 0)):
-            raise RuntimeError("positional counts out of order or out of the table file's range")
-        self.n_rows += len(rows)
-        self.hi[rows] += hi  # rows are distinct within one payload
-        self.lo[rows] += lo
-        self.present[rows] = True
-
-    def result(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """(row keys ascending, hi, lo) of the rows that received counts (the file is sorted by key)."""
-        rows = np.flatnonzero(self.present)
-        return counts.row_keys(self.dirs[rows], self.src[rows], self.tgt[rows]), self.hi[rows], self.lo[rows]
+    return np.cumsum(deltas, dtype=np.int64), hi, lo
 
 
 def make_payload_folder(n_buckets: int):
@@ -247,15 +174,13 @@ def part_name(index: int) -> str:
     return f"part-{index:05d}.parquet"
 
 
-def make_reducer(lex_url: str, n_parts: int, *, min_prob: float, prune_below: float | None,
-                 previous_url: str | None = None):
+def make_reducer(lex_url: str, n_parts: int, *, min_prob: float, prune_below: float | None):
     """The reducer: (partition index, (bucket, payload) records) -> one small summary dict.
 
     ``lex_url``: fsspec URL of the table directory being written; ``n_parts``: the number of reducers
-    (buckets); ``previous_url``: the table the E-step read, whose file rows positional payloads name.
-    Each file records its bucket and a digest of its keys in its schema metadata, so the next E-step
-    can use the files as they are and, where the keys did not change, read only their probabilities
-    (``engine.tables.read_worker_tables``).
+    (buckets). Each file records its bucket and a digest of its keys in its schema metadata, so the next
+    E-step can use the files as they are and, where the keys did not change, read only their
+    probabilities (``engine.tables.read_worker_tables``).
     """
 
     def reduce(index, records):
@@ -263,21 +188,11 @@ def make_reducer(lex_url: str, n_parts: int, *, min_prob: float, prune_below: fl
 
         started = time.perf_counter()
         buffer = counts.CountBuffer()
-        by_file = None
         for _bucket, data in records:
-            keys, hi, lo, file_keys = decode_payload(data)
-            if file_keys is None:
-                buffer.add(keys, hi, lo)
-            else:
-                by_file = by_file or _FileCounts(previous_url, index, n_parts, file_keys)
-                by_file.add(keys, hi, lo, file_keys)
+            buffer.add(*decode(data))
         keys, hi, lo = buffer.result()
-        if by_file is not None:  # two sorted runs (disjoint: keyed rows are not in the file)
-            keys, hi, lo = counts.reduce_sorted(*(np.concatenate([a, b]) for a, b in zip(by_file.result(),
-                                                                                       (keys, hi, lo))))
         dirs, src, tgt = counts.split_keys(keys)
-        summary = {"part": index, "dense": {}, "scalar": {}, "entries": {}, "pruned": {},
-                   "positional_rows": by_file.n_rows if by_file is not None else 0}
+        summary = {"part": index, "dense": {}, "scalar": {}, "entries": {}, "pruned": {}}
         for kind, code in (("dense", DENSE), ("scalar", SCALAR)):
             for k in np.flatnonzero(src == code):
                 summary[kind][(int(dirs[k]), int(tgt[k]))] = (int(hi[k]), int(lo[k]))

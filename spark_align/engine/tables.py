@@ -256,7 +256,6 @@ def read_worker_tables(url: str, directions: tuple[str, ...], *, layout: TableLa
             out[d] = DirectionTable(keys, probs)
             out[d].__dict__.setdefault("_bucket_order", {})[(DIRS.index(d), len(layout.names))] = (by_bucket, bounds)
         layout.spans, layout.merged = previous.spans, previous.merged
-        _note_files(out, layout)
         return out
     runs: dict[str, list] = {d: [] for d in directions}
     spans = []
@@ -282,16 +281,7 @@ def read_worker_tables(url: str, directions: tuple[str, ...], *, layout: TableLa
         out[d].__dict__.setdefault("_bucket_order", {})[(DIRS.index(d), len(layout.names))] = (by_bucket, bounds)
         merged[d] = (out[d].keys, by_bucket, bounds)
     layout.spans, layout.merged = spans, merged
-    _note_files(out, layout)
     return out
-
-
-def _note_files(tables: dict[str, DirectionTable], layout: TableLayout) -> None:
-    """Tell each direction's table which files it came from: their number, the rows of that direction
-    in each file and each file's key digest (``engine.mstep.TaskCounts.payloads`` names file rows)."""
-    for d, table in tables.items():
-        table.__dict__["_files"] = {"n": len(layout.names), "spans": [span[d] for span in layout.spans],
-                                    "digests": [m.get(KEYS_META) for m in layout.metas]}
 
 
 def _read_parquet_on_driver(spark, path: str):

@@ -134,56 +134,6 @@ def test_a_table_with_the_same_keys_is_read_as_probabilities_only(tmp_path):
         assert np.array_equal(three[d].keys, want[d].keys) and np.array_equal(three[d].probs, want[d].probs)
 
 
-def test_positional_payloads_give_the_same_table_files_as_keyed_ones(tmp_path):
-    """Counts sent as rows of the table files the E-step read (the reducers add them into arrays
-    aligned with those files) give the same table files, byte for byte, as counts sent with their keys;
-    a reducer refuses positional rows for a file that is not the one they name."""
-    from spark_align.engine import estep, mstep
-    from spark_align.kernels import counts
-
-    rng = np.random.default_rng(7)
-    n, n_parts = 6000, 3
-    dirs = rng.integers(0, 2, n).astype(np.int8)
-    src, tgt = rng.integers(0, 300, n).astype(np.int32), rng.integers(0, 250, n).astype(np.int32)
-
-    def reduce_all(name, records, previous_url=None):
-        reduce = mstep.make_reducer(str(tmp_path / name), n_parts, min_prob=tables.MIN_PROB, prune_below=None,
-                                    previous_url=previous_url)
-        by_bucket: dict[int, list] = {}
-        for bucket, data in records:
-            by_bucket.setdefault(bucket, []).append((bucket, data))
-        return [list(reduce(i, iter(by_bucket.get(i, [])))) for i in range(n_parts)]
-
-    buffer = counts.CountBuffer()
-    mstep.fold_rows(buffer, dirs, src, tgt, *estep.to_fixed(rng.random(n)))
-    reduce_all("previous", mstep.payloads(buffer, n_parts))
-    previous = str(tmp_path / "previous")
-    dirs_ = ("forward", "reverse")
-    tabs = tables.read_worker_tables(previous, dirs_)
-    tasks = {flag: mstep.TaskCounts(tabs, positional=flag) for flag in (True, False)}
-    for _ in range(5):  # blocks: some keys of the table, some it lacks
-        dict_keys = np.unique(np.concatenate([rng.choice(tabs["forward"].keys, 400), rng.choice(tabs["reverse"].keys, 400),
-                                              (rng.integers(0, 320, 50).astype(np.int64) << 32) | rng.integers(0, 260, 50)]))
-        for d, name in enumerate(dirs_):
-            emitted = rng.random(len(dict_keys)) < 0.95
-            values = rng.random(len(dict_keys)) * 2
-            other = (np.array([-1, -2], np.int32), np.array([d + 1, 0], np.int32), np.array([0.25, -3.0]))
-            for task in tasks.values():
-                task.add(dict_keys, tabs[name].positions(dict_keys), d, emitted, values, other)
-    records = {flag: list(task.payloads(n_parts)) for flag, task in tasks.items()}
-    assert any(mstep.decode_payload(data)[3] is not None for _, data in records[True])
-    assert all(mstep.decode_payload(data)[3] is None for _, data in records[False])
-    summaries = {flag: reduce_all(f"next-{flag}", recs, previous) for flag, recs in records.items()}
-    for i in range(n_parts):
-        name = mstep.part_name(i)
-        assert (tmp_path / f"next-{True}" / name).read_bytes() == (tmp_path / f"next-{False}" / name).read_bytes()
-        assert summaries[True][i][0]["scalar"] == summaries[False][i][0]["scalar"]
-
-    # Positional rows checked against the file they name: another table's files are refused.
-    with pytest.raises(RuntimeError, match="not the one the E-step read"):
-        reduce_all("wrong", records[True], str(tmp_path / f"next-{True}"))
-
-
 def test_shipping_is_not_part_of_the_resume_key_but_pruning_is():
     c = CorpusConfig(path="x.parquet")
     base = RunConfig(corpus=c).training_key()
