@@ -103,3 +103,26 @@ def test_reverse_grid_is_each_pairs_grid_transposed():
         a, b = block.grid_offsets[p], block.grid_offsets[p + 1]
         want = block.grid[a:b].reshape(src_len[p] + 1, tgt_len[p] + 1).T.ravel()
         np.testing.assert_array_equal(got[a:b], want)
+
+
+def test_gen_cells_enumerates_links_token_major():
+    """Every (generated token, cond position) link, tokens in pair order, positions 0..l, and the grid
+    cell of each, checked against a plain loop over the pairs."""
+    from spark_align.kernels import ragged
+
+    rng = np.random.default_rng(11)
+    cond_len, gen_len = rng.integers(0, 6, 30), rng.integers(0, 6, 30)
+    cell_offsets = ragged.offsets_from_lengths((cond_len + 1) * (gen_len + 1))
+    want_flat, want_token, want_pos = [], [], []
+    token = 0
+    for p in range(30):
+        for j in range(1, gen_len[p] + 1):
+            for i in range(cond_len[p] + 1):
+                want_flat.append(cell_offsets[p] + i * (gen_len[p] + 1) + j)
+                want_token.append(token)
+                want_pos.append(i)
+            token += 1
+    gc = ragged.gen_cells(cond_len, gen_len, cell_offsets)
+    assert gc.n_tokens == token == gen_len.sum()
+    for got, want in ((gc.flat, want_flat), (gc.token, want_token), (gc.cond_pos, want_pos)):
+        np.testing.assert_array_equal(got, np.array(want, np.int64))
