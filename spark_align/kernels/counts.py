@@ -38,7 +38,8 @@ def reduce_sorted(keys: np.ndarray, hi: np.ndarray, lo: np.ndarray):
         return keys.astype(np.int64), hi.astype(np.int64), lo.astype(np.int64)
     # Rows arrive as a few sorted runs (payloads, earlier folds): merged and summed in one compiled
     # pass over the runs, with no sort and no scattered reads (numpy's argsort, gathers and reduceat
-    # took 8x longer on 12M rows). Many runs: a stable sort orders the rows first.
+    # took 1.12 s against 0.41 s for one of two reducers at 200k pairs). Many runs: a stable sort
+    # orders the rows first. The sums are views of arrays as long as the input.
     starts = np.concatenate([[0], np.flatnonzero(keys[1:] < keys[:-1]) + 1]).astype(np.int64)
     ends = np.append(starts[1:], len(keys)).astype(np.int64)
     args = (np.ascontiguousarray(keys, np.int64), np.ascontiguousarray(hi, np.int64),

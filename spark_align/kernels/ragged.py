@@ -141,8 +141,8 @@ class GenCells:
 def gen_cells(cond_len: np.ndarray, gen_len: np.ndarray, cell_offsets: np.ndarray) -> GenCells:
     """Enumerate links token-major: every generated token in pair order, then cond positions 0..l.
 
-    One compiled pass (the numpy version, built from repeats and gathers over link-sized arrays, took
-    5x longer and was an eighth of the output pass's decoding)."""
+    One compiled pass: the numpy version, built from repeats and gathers over link-sized arrays, took
+    0.22 s against 0.047 s for 16k pairs, and a seventh of the output pass's decoding."""
     cond_len, gen_len = np.asarray(cond_len, np.int64), np.asarray(gen_len, np.int64)
     n_links = int((gen_len * (cond_len + 1)).sum())
     flat, token, cond_pos = (np.empty(n_links, np.int64) for _ in range(3))
