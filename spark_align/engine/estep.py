@@ -132,9 +132,8 @@ def make_estep(model, directions: tuple[str, ...], tables_src, dense: dict[str, 
                     add_seconds += time.perf_counter() - added
             looked_up = time.perf_counter()
             for d in hinted:
-                if searched[d]:
-                    hints.write(hints_fs, hints_root, d, path, row_group,
-                                np.concatenate(points[d]) if points[d] else np.zeros(0, np.int64))
+                if searched[d]:  # a key was searched for, so the row group has blocks
+                    hints.write(hints_fs, hints_root, d, path, row_group, np.concatenate(points[d]))
             for d in directions:
                 searched_total[d] += searched[d]
                 keys_total[d] += n_keys
