@@ -5,8 +5,9 @@ Per iteration:
 1. Each E-step task (either shipping path) folds the rows of all its blocks
    into one sum per distinct (dir, src, tgt) (:class:`~spark_align.kernels.counts.CountBuffer`,
    integer fixed point) and emits one record per reducer bucket:
-   ``(bucket, Arrow IPC bytes)``. A task's output is then at most the number of
-   distinct pairs it saw, not one row per block entry.
+   ``(bucket, payload bytes)`` (``kernels.counts.encode_rows``). A task's output
+   is then at most the number of distinct pairs it saw, not one row per block
+   entry.
 2. Spark's shuffle moves those records as opaque bytes (``RDD.partitionBy``
    with the bucket as partition), so every row of one conditioning word (and
    every entry of one dense statistic) meets in one reducer task.
@@ -37,8 +38,6 @@ from spark_align.kernels import counts
 from spark_align.store import BUCKET_PROTOCOLS
 
 TABLE_SCHEMA = pa.schema([("dir", pa.int8()), ("src", pa.int32()), ("tgt", pa.int32()), ("prob", pa.float64())])
-_PAYLOAD_SCHEMA = pa.schema([("key_delta", pa.int64()), ("hi", pa.int64()), ("lo", pa.int64())])
-_IPC_OPTIONS = pa.ipc.IpcWriteOptions(compression=pa.Codec("zstd", compression_level=1))
 
 
 def fold_rows(buffer: counts.CountBuffer, dirs, src, tgt, hi, lo) -> None:
@@ -98,22 +97,15 @@ class TaskCounts:
 
     def payloads(self, n_buckets: int):
         """(bucket, bytes) records: every count of this task, one record per non-empty bucket."""
-        by_bucket: dict[int, list] = {}
+        by_bucket: dict[int, list[bytes]] = {}
         for bucket, part in _split_arrays(*self.buffer.result(), n_buckets):
-            by_bucket.setdefault(bucket, []).append(part)
+            by_bucket.setdefault(bucket, []).append(encode(*part))
         for d, (acc, touched, table_keys) in sorted(self.acc.items()):
-            # Cost follows the table (a gather of one byte per entry) and the entries this task touched;
-            # the grouping by bucket is the table's, computed once per Python worker.
-            order, bounds = self.tables[DIRS[d]].bucket_order(d, n_buckets)
-            touched_in_order = touched[order]
-            shift = (np.int64(d) << 62) + (np.int64(2) << 32)  # table key (src << 32 | tgt) -> row key
-            for b in range(n_buckets):
-                idx = order[bounds[b] + np.flatnonzero(touched_in_order[bounds[b]:bounds[b + 1]])]
-                if len(idx):
-                    by_bucket.setdefault(b, []).append((table_keys[idx] + shift, acc[idx, 0], acc[idx, 1]))
+            # Cost follows the table (sequential passes) and the entries this task touched.
+            for bucket, segment in counts.encode_touched(touched, table_keys, d, n_buckets, acc).items():
+                by_bucket.setdefault(bucket, []).append(segment)
         for bucket in sorted(by_bucket):
-            keys, hi, lo = (np.concatenate(x) for x in zip(*by_bucket[bucket]))
-            yield bucket, encode(keys, hi, lo)
+            yield bucket, b"".join(by_bucket[bucket])
 
 
 def _split_arrays(keys, hi, lo, n_buckets: int):
@@ -135,21 +127,14 @@ def _groups(bucket: np.ndarray):
 
 
 def encode(keys: np.ndarray, hi: np.ndarray, lo: np.ndarray) -> bytes:
-    """Rows as compressed Arrow IPC bytes: keys delta-coded (payloads are a few sorted runs, so the
-    deltas are small numbers), every buffer zstd-compressed. About 2.5x fewer bytes to shuffle than
-    the raw 24 bytes per row; exact (integer deltas, undone by a cumulative sum)."""
-    deltas = np.diff(keys, prepend=np.int64(0))
-    batch = pa.RecordBatch.from_arrays([pa.array(deltas), pa.array(hi), pa.array(lo)], schema=_PAYLOAD_SCHEMA)
-    sink = pa.BufferOutputStream()
-    with pa.ipc.new_stream(sink, _PAYLOAD_SCHEMA, options=_IPC_OPTIONS) as writer:
-        writer.write_batch(batch)
-    return sink.getvalue().to_pybytes()
+    """Rows as payload bytes (``kernels.counts.encode_rows``: variable-length integers, keys as steps
+    from the previous key); exact."""
+    return counts.encode_rows(keys, hi, lo)
 
 
 def decode(data) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    table = pa.ipc.open_stream(pa.py_buffer(bytes(data) if isinstance(data, bytearray) else data)).read_all()
-    deltas, hi, lo = (table.column(i).to_numpy() for i in range(3))
-    return np.cumsum(deltas, dtype=np.int64), hi, lo
+    """(keys, hi, lo) of a payload: one or more encoded parts joined."""
+    return counts.decode_rows(data)
 
 
 def make_payload_folder(n_buckets: int):

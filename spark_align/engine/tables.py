@@ -74,26 +74,6 @@ class DirectionTable:
         pos, hit, probs, points, searched = find_hinted(self.keys, self.probs, dict_keys, MIN_PROB, hints)
         return (pos, hit), probs, points, searched
 
-    def bucket_order(self, d: int, n_buckets: int) -> tuple[np.ndarray, np.ndarray]:
-        """(order, bounds): table positions grouped by reducer bucket (``kernels.counts.bucket_of_cond``
-        of the conditioning word, direction index ``d``), ascending within each bucket;
-        ``order[bounds[b]:bounds[b + 1]]`` are bucket ``b``'s.
-
-        Computed once per table and bucket count in each Python worker (or known from the files the
-        table was read from, :func:`read_worker_tables`), then reused by every task that worker runs
-        (``engine.mstep.TaskCounts.payloads``).
-        """
-        from spark_align.kernels.counts import bucket_of_cond
-
-        cache = self.__dict__.setdefault("_bucket_order", {})
-        if (d, n_buckets) not in cache:
-            cond = (self.keys >> 32) if d == 0 else (self.keys & np.int64(0xFFFFFFFF))
-            bucket = bucket_of_cond(cond, d, n_buckets)
-            small = bucket.astype(np.int16) if n_buckets < 2 ** 15 else bucket
-            order = np.argsort(small, kind="stable")
-            cache[(d, n_buckets)] = (order, np.searchsorted(bucket[order], np.arange(n_buckets + 1)))
-        return cache[(d, n_buckets)]
-
 
 def uniform_tables(directions: tuple[str, ...], src_vocab_size: int, tgt_vocab_size: int) -> dict[str, DirectionTable]:
     """Uniform initial tables: t(f | e) = 1 / |V_f| (the NULL id is not counted)."""
@@ -180,7 +160,7 @@ def keys_digest(dirs: np.ndarray, src: np.ndarray, tgt: np.ndarray) -> str:
 class TableLayout:
     """What a table directory's file footers say: file names, each file's schema metadata, and (once
     read) each file's rows per direction; plus, after :func:`read_worker_tables`, the merge of the
-    files into each direction's sorted keys (``merged[d] = (keys, by_bucket, bounds)``), so the next
+    files into each direction's sorted keys (``merged[d] = (keys, order)``), so the next
     table with the same keys needs only its probabilities read."""
 
     url: str
@@ -225,9 +205,8 @@ def read_worker_tables(url: str, directions: tuple[str, ...], *, layout: TableLa
 
     Each reducer file holds one bucket's rows sorted by (dir, src, tgt) and names its bucket in its
     metadata. Concatenated in bucket order, each direction's keys are a few sorted runs, which a
-    stable sort merges quickly, and the table's grouping by reducer bucket is known without hashing
-    or sorting (see :meth:`DirectionTable.bucket_order`). Tables without that metadata (written by an older
-    version) are read whole.
+    stable sort merges quickly. Tables without that metadata (written by an older version) are read
+    whole.
 
     ``previous``: the layout of a table with the same keys (:meth:`TableLayout.same_keys`, which the
     caller has checked); then only the ``prob`` column is read, and the keys and their merge are
@@ -250,11 +229,8 @@ def read_worker_tables(url: str, directions: tuple[str, ...], *, layout: TableLa
                 runs_p[d].append(prob[span[d][0]:span[d][1]])
         out = {}
         for d in directions:
-            keys, by_bucket, bounds = previous.merged[d]
-            probs = np.empty(len(keys))
-            probs[by_bucket] = np.concatenate(runs_p[d])
-            out[d] = DirectionTable(keys, probs)
-            out[d].__dict__.setdefault("_bucket_order", {})[(DIRS.index(d), len(layout.names))] = (by_bucket, bounds)
+            keys, order = previous.merged[d]
+            out[d] = DirectionTable(keys, np.concatenate(runs_p[d])[order])
         layout.spans, layout.merged = previous.spans, previous.merged
         return out
     runs: dict[str, list] = {d: [] for d in directions}
@@ -274,12 +250,7 @@ def read_worker_tables(url: str, directions: tuple[str, ...], *, layout: TableLa
         keys, probs = (np.concatenate(x) for x in zip(*runs[d]))
         order = np.argsort(keys, kind="stable")  # merges the runs: 0.04-0.07 s for 3.4M entries
         out[d] = DirectionTable(keys[order], probs[order])
-        # The files' order is the bucket order: position k of the sorted table came from order[k].
-        by_bucket = np.empty_like(order)
-        by_bucket[order] = np.arange(len(order))
-        bounds = np.concatenate([[0], np.cumsum([len(k) for k, _ in runs[d]])])
-        out[d].__dict__.setdefault("_bucket_order", {})[(DIRS.index(d), len(layout.names))] = (by_bucket, bounds)
-        merged[d] = (out[d].keys, by_bucket, bounds)
+        merged[d] = (out[d].keys, order)  # position k of the sorted table came from row order[k] of the files
     layout.spans, layout.merged = spans, merged
     return out
 

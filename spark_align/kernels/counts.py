@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import numpy as np
 from numba import njit
+from numba.cpython.unsafe.numbers import leading_zeros
 
 MAX_ID = 2 ** 30 - 2  # ids (and dense indexes) must stay below this
 FIELDS = ("dir", "src", "tgt", "hi", "lo")
@@ -201,3 +202,173 @@ def add_at_positions(pos: np.ndarray, hit: np.ndarray, emitted: np.ndarray, valu
                 np.ascontiguousarray(emitted, np.bool_), np.ascontiguousarray(values, np.float64),
                 float(hi_scale), float(lo_scale), acc, touched, miss)
     return miss[:n]
+
+
+# -- E-step rows as bytes (the shuffle's payloads) ------------------------------------------------
+# A payload is one or more segments: a 16-byte header (rows, bytes; little-endian int64) and then, per
+# row, three variable-length integers: the key's step from the segment's previous key, hi and lo. Each
+# integer is zigzag-mapped (small magnitudes of either sign are small) and written 7 bits per byte,
+# low bits first, the top bit set on every byte but the last. Keys arrive as a few sorted runs, so
+# steps are mostly one byte; lo (a 30-bit fraction per summand) takes four or five. Measured on one
+# E-step task's 4.8M rows at 200k pairs: 7.6 bytes per row, encoded in 0.046 s, against 6.5 bytes and
+# 0.33 s for zstd over Arrow columns; decoding takes about as long as zstd's.
+_SEGMENT_HEADER = 16
+_MAX_ROW_BYTES = 30  # three integers of at most 10 bytes
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _put(out, o, v):  # pragma: no cover
+    u = np.uint64((v << np.int64(1)) ^ (v >> np.int64(63)))
+    while u >= np.uint64(0x80):
+        out[o] = np.uint8((u & np.uint64(0x7F)) | np.uint64(0x80))
+        o += 1
+        u >>= np.uint64(7)
+    out[o] = np.uint8(u)
+    return o + 1
+
+
+@njit(cache=True, nogil=True)
+def _encode_rows(keys, hi, lo, out):  # pragma: no cover
+    o = _SEGMENT_HEADER
+    prev = np.int64(0)
+    for i in range(len(keys)):
+        o = _put(out, o, keys[i] - prev)
+        prev = keys[i]
+        o = _put(out, o, hi[i])
+        o = _put(out, o, lo[i])
+    return o
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _size(v):  # pragma: no cover
+    # bytes of _put(v), from the zigzag value's bit length (no data-dependent branch)
+    u = np.uint64((v << np.int64(1)) ^ (v >> np.int64(63))) | np.uint64(1)
+    return (np.int64(63) - np.int64(leading_zeros(u))) // 7 + 1
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _cond(key, d):  # pragma: no cover
+    return key >> np.int64(32) if d == 0 else key & np.int64(0xFFFFFFFF)
+
+
+@njit(cache=True, nogil=True)
+def _touched_sizes(index, table_keys, d, bucket_of, shift, acc, rows, sizes):  # pragma: no cover
+    prev = np.zeros(len(rows), np.int64)
+    for p in index:
+        k = table_keys[p] + shift
+        b = bucket_of[_cond(table_keys[p], d)]
+        sizes[b] += _size(k - prev[b]) + _size(acc[p, 0]) + _size(acc[p, 1])
+        prev[b] = k
+        rows[b] += 1
+
+
+@njit(cache=True, nogil=True)
+def _encode_touched(index, table_keys, d, bucket_of, shift, acc, at, out):  # pragma: no cover
+    prev = np.zeros(len(at), np.int64)
+    for p in index:
+        k = table_keys[p] + shift
+        b = bucket_of[_cond(table_keys[p], d)]
+        o = _put(out, at[b], k - prev[b])
+        prev[b] = k
+        o = _put(out, o, acc[p, 0])
+        at[b] = _put(out, o, acc[p, 1])
+
+
+def _segment(out: np.ndarray, n_bytes: int, rows: int) -> bytes:
+    out[:_SEGMENT_HEADER] = np.frombuffer(np.array([rows, n_bytes - _SEGMENT_HEADER], "<i8").tobytes(), np.uint8)
+    return out[:n_bytes].tobytes()
+
+
+def encode_rows(keys: np.ndarray, hi: np.ndarray, lo: np.ndarray) -> bytes:
+    """Rows (int64 arrays of one length) as one payload segment; exact (see :func:`decode_rows`)."""
+    keys, hi, lo = (np.ascontiguousarray(a, np.int64) for a in (keys, hi, lo))
+    out = np.empty(_SEGMENT_HEADER + _MAX_ROW_BYTES * len(keys), np.uint8)
+    return _segment(out, _encode_rows(keys, hi, lo, out), len(keys))
+
+
+def encode_touched(touched: np.ndarray, table_keys: np.ndarray, d: int, n_buckets: int,
+                   acc: np.ndarray) -> dict[int, bytes]:
+    """One payload segment per reducer bucket (:func:`bucket_of_cond`) of direction ``d``'s rows
+    ``(row key of table_keys[p], acc[p, 0], acc[p, 1])`` for every table position ``p`` where
+    ``touched[p]``, keys ascending within each bucket.
+
+    Two passes over the touched positions in table order (sizes, then bytes), with no gather in bucket
+    order: 0.133 s against 0.150 s for gathering by bucket then encoding, for one E-step task's 4.8M
+    rows at 200k pairs (same bytes). Memory: the encoded rows, once.
+    """
+    shift = (np.int64(d) << np.int64(62)) + (np.int64(2) << np.int64(32))  # table key -> row key
+    table_keys = np.ascontiguousarray(table_keys, np.int64)
+    # every conditioning word's bucket, looked up (a division per row cost more than the rest)
+    n_cond = int(_cond(table_keys.max(), d) if d == 0 else (table_keys & 0xFFFFFFFF).max()) + 1 if len(table_keys) else 0
+    bucket_of = bucket_of_cond(np.arange(n_cond), d, n_buckets).astype(np.int32)
+    # the touched positions first (vectorised): a branch per table entry cost more than the encoding
+    args = (np.flatnonzero(touched), table_keys, int(d), bucket_of, shift,
+            np.ascontiguousarray(acc, np.int64))
+    rows, sizes = np.zeros(n_buckets, np.int64), np.zeros(n_buckets, np.int64)
+    _touched_sizes(*args, rows, sizes)
+    starts = np.concatenate([[0], np.cumsum(sizes + _SEGMENT_HEADER)])
+    out = np.empty(int(starts[-1]), np.uint8)
+    _encode_touched(*args, (starts[:-1] + _SEGMENT_HEADER).astype(np.int64), out)
+    segments = {}
+    for b in np.flatnonzero(rows):
+        start = int(starts[b])
+        out[start:start + _SEGMENT_HEADER] = np.frombuffer(np.array([rows[b], sizes[b]], "<i8").tobytes(), np.uint8)
+        segments[int(b)] = out[start:int(starts[b + 1])].tobytes()
+    return segments
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _get(data, o, end):  # pragma: no cover
+    u = np.uint64(0)
+    s = np.uint64(0)
+    while True:
+        if o >= end or s > np.uint64(63):
+            return np.int64(0), -1
+        b = np.uint64(data[o])
+        o += 1
+        u |= (b & np.uint64(0x7F)) << s
+        if b < np.uint64(0x80):
+            break
+        s += np.uint64(7)
+    return np.int64(u >> np.uint64(1)) ^ -np.int64(u & np.uint64(1)), o
+
+
+@njit(cache=True, nogil=True)
+def _decode_rows(data, o, end, rows, keys, hi, lo, at):  # pragma: no cover
+    prev = np.int64(0)
+    for i in range(at, at + rows):
+        step, o = _get(data, o, end)
+        if o < 0:
+            return -1
+        prev += step
+        keys[i] = prev
+        hi[i], o = _get(data, o, end)
+        if o < 0:
+            return -1
+        lo[i], o = _get(data, o, end)
+        if o < 0:
+            return -1
+    return o
+
+
+def decode_rows(data) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(keys, hi, lo) of a payload (segments of :func:`encode_rows` / :func:`encode_touched`, joined);
+    ValueError if ``data`` is not one."""
+    buf = np.frombuffer(data, np.uint8)
+    segments, o, total = [], 0, 0
+    while o < len(buf):
+        if o + _SEGMENT_HEADER > len(buf):
+            raise ValueError("truncated payload segment header")
+        rows, n_bytes = (int(x) for x in np.frombuffer(buf, "<i8", 2, o))
+        if rows < 0 or n_bytes < 0 or o + _SEGMENT_HEADER + n_bytes > len(buf):
+            raise ValueError("payload segment header does not fit the payload")
+        segments.append((o + _SEGMENT_HEADER, rows, n_bytes))
+        o += _SEGMENT_HEADER + n_bytes
+        total += rows
+    keys, hi, lo = (np.empty(total, np.int64) for _ in range(3))
+    at = 0
+    for start, rows, n_bytes in segments:
+        if _decode_rows(buf, start, start + n_bytes, rows, keys, hi, lo, at) != start + n_bytes:
+            raise ValueError("payload segment does not hold the rows its header says")
+        at += rows
+    return keys, hi, lo

@@ -212,3 +212,55 @@ def test_ids_beyond_the_key_range_are_refused():
     with pytest.raises(ValueError, match="word ids must stay below"):
         mstep.fold_rows(buf, np.zeros(1, np.int8), np.array([counts.MAX_ID], np.int32), np.zeros(1, np.int32),
                         np.zeros(1, np.int64), np.zeros(1, np.int64))
+
+
+def test_payload_rows_round_trip_at_the_extremes_and_joined():
+    rng = np.random.default_rng(11)
+    edge = np.array([0, 1, -1, 63, 64, -64, -65, 2 ** 31, -2 ** 31, 2 ** 62, -2 ** 62,
+                     np.iinfo(np.int64).max, np.iinfo(np.int64).min], np.int64)
+    keys = np.concatenate([np.sort(rng.integers(0, 2 ** 62, 500)), np.sort(rng.integers(0, 2 ** 62, 300)), edge])
+    hi = np.concatenate([rng.integers(-2 ** 40, 2 ** 40, 800), edge])
+    lo = np.concatenate([rng.integers(0, 2 ** 34, 800), edge[::-1]])
+    first = counts.encode_rows(keys, hi, lo)
+    empty = counts.encode_rows(keys[:0], hi[:0], lo[:0])
+    second = counts.encode_rows(keys[:7], hi[:7], lo[:7])
+    got = counts.decode_rows(bytearray(first + empty + second))  # Spark hands binary values back as bytearray
+    for g, want in zip(got, (keys, hi, lo)):
+        np.testing.assert_array_equal(g, np.concatenate([want, want[:7]]))
+    assert all(len(a) == 0 for a in counts.decode_rows(b""))
+
+
+@pytest.mark.parametrize("damage", ["truncate", "header", "extra"])
+def test_damaged_payloads_are_refused(damage):
+    data = counts.encode_rows(np.arange(50, dtype=np.int64) * 3, np.arange(50, dtype=np.int64),
+                              np.full(50, 2 ** 33, np.int64))
+    if damage == "truncate":
+        data = data[:-3]
+    elif damage == "header":  # says one row more than it holds
+        data = np.array([51], "<i8").tobytes() + data[8:]
+    else:  # bytes past the rows, inside the segment
+        data = np.array([50, len(data) - 16 + 2], "<i8").tobytes() + data[16:] + b"\x00\x00"
+    with pytest.raises(ValueError):
+        counts.decode_rows(data)
+
+
+@pytest.mark.parametrize("d", [0, 1])
+def test_encode_touched_equals_gathering_by_bucket_then_encoding(d):
+    rng = np.random.default_rng(12 + d)
+    table_keys = np.unique((rng.integers(0, 3000, 30000).astype(np.int64) << 32) | rng.integers(0, 3000, 30000))
+    n = len(table_keys)
+    acc = np.stack([rng.integers(0, 2 ** 36, n), rng.integers(0, 2 ** 33, n)], axis=1)
+    touched = rng.random(n) < 0.3
+    cond = (table_keys >> 32) if d == 0 else (table_keys & 0xFFFFFFFF)
+    bucket = counts.bucket_of_cond(cond, d, 7)
+    shift = (d << 62) + (2 << 32)
+    segments = counts.encode_touched(touched, table_keys, d, 7, acc)
+    assert sorted(segments) == sorted(set(bucket[touched].tolist()))
+    for b, data in segments.items():
+        want = np.flatnonzero(touched & (bucket == b))  # ascending table positions
+        k, h, lo = counts.decode_rows(data)
+        np.testing.assert_array_equal(k, table_keys[want] + shift)
+        np.testing.assert_array_equal(h, acc[want, 0])
+        np.testing.assert_array_equal(lo, acc[want, 1])
+        assert np.array_equal(counts.buckets_of(k, 7), np.full(len(k), b))
+    assert counts.encode_touched(np.zeros(n, bool), table_keys, d, 7, acc) == {}
