@@ -24,10 +24,14 @@ def _search_kernel(table_keys, keys, hints, pos_out, hit_out, table_values, defa
     for i in range(len(keys)):
         k = keys[i]
         lo = -1
+        found = False
         if with_hints:
             h = hints[i]
+            if 0 <= h < n and table_keys[h] == k:  # the usual case: one read
+                lo = h
+                found = True
             # A hint is the insertion point found before; it still is one if its neighbours bracket k.
-            if 0 <= h <= n and (h == n or table_keys[h] >= k) and (h == 0 or table_keys[h - 1] < k):
+            elif 0 <= h <= n and (h == n or table_keys[h] > k) and (h == 0 or table_keys[h - 1] < k):
                 lo = h
             else:
                 stale += 1
@@ -49,9 +53,9 @@ def _search_kernel(table_keys, keys, hints, pos_out, hit_out, table_values, defa
                     lo = mid + 1
                 else:
                     hi = mid
+            found = lo < n and table_keys[lo] == k
         pos = lo
         lo_out[i] = lo
-        found = lo < n and table_keys[lo] == k
         pos_out[i] = lo if lo < n else n - 1
         hit_out[i] = found
         if with_values:
@@ -88,20 +92,18 @@ def find_hinted(table_keys: np.ndarray, table_values: np.ndarray, keys: np.ndarr
 
 
 def _search(table_keys, keys, table_values, default, hints):
-    pos = np.zeros(len(keys), np.int64)
-    hit = np.zeros(len(keys), np.bool_)
-    values = np.full(len(keys) if table_values is not None else 0, default, np.float64)
-    lo = np.zeros(len(keys), np.int64)
-    searched = len(keys) if hints is None else 0
-    if len(table_keys) and len(keys):
-        searched = _search_kernel(
-            np.ascontiguousarray(table_keys, np.int64), np.ascontiguousarray(keys, np.int64),
-            np.zeros(0, np.int64) if hints is None else np.ascontiguousarray(hints, np.int64), pos, hit,
-            np.zeros(0) if table_values is None else np.ascontiguousarray(table_values, np.float64),
-            float(default), values, lo)
-        if hints is None:
-            searched = len(keys)
-    return pos, hit, values, lo, int(searched)
+    n_values = len(keys) if table_values is not None else 0
+    if not (len(table_keys) and len(keys)):
+        return (np.zeros(len(keys), np.int64), np.zeros(len(keys), np.bool_), np.full(n_values, default, np.float64),
+                np.zeros(len(keys), np.int64), len(keys) if hints is None else 0)
+    pos, hit, values, lo = (np.empty(len(keys), np.int64), np.empty(len(keys), np.bool_),
+                            np.empty(n_values, np.float64), np.empty(len(keys), np.int64))  # all written
+    searched = _search_kernel(
+        np.ascontiguousarray(table_keys, np.int64), np.ascontiguousarray(keys, np.int64),
+        np.zeros(0, np.int64) if hints is None else np.ascontiguousarray(hints, np.int64), pos, hit,
+        np.zeros(0) if table_values is None else np.ascontiguousarray(table_values, np.float64),
+        float(default), values, lo)
+    return pos, hit, values, lo, len(keys) if hints is None else int(searched)
 
 
 # Stored hints: insertion points of a few sorted key runs, so mostly small steps forward. Each step
