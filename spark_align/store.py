@@ -98,17 +98,21 @@ class RunStore:
                 out[name] = int(info["size"])
         return out
 
-    def checksums(self, *parts: str) -> dict[str, str]:
+    def checksums(self, *parts: str, known: dict[str, str] | None = None) -> dict[str, str]:
         """CRC-32 (hex) of every data file under a sub-path, as :meth:`files` lists them.
 
         Sizes catch truncation; the checksum also catches bytes changed in place.
-        It costs one read of the files through fsspec (0.3 GB/s measured locally on a busy 2-core machine).
+        It costs one read of the files through fsspec (0.3 GB/s measured locally on a busy 2-core machine),
+        except for files in ``known`` (name -> CRC-32 of the bytes their writer wrote), which are not read.
         """
         import zlib
 
         base = self._path(*parts)
         out = {}
         for name in self.files(*parts):
+            if known and name in known:
+                out[name] = known[name]
+                continue
             crc = 0
             with self.fs.open(posixpath.join(base, name), "rb") as fh:
                 for chunk in iter(lambda: fh.read(8 << 20), b""):

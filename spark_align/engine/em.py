@@ -101,6 +101,7 @@ class Trainer:
         self.n_words = {"forward": encoded["n_tgt_tokens"], "reverse": encoded["n_src_tokens"]}
         self._last_per_word: dict[str, float] = {}
         self._units: list[tuple[str, int]] | None = None
+        self._written_crc: dict[str, str] = {}
 
     def blocks(self):
         return self.spark.read.parquet(self.store.spark_path("encoded", "blocks"))
@@ -157,6 +158,8 @@ class Trainer:
                 prune_below=self.cfg.prune_below)
         job_seconds = time.perf_counter() - started
         self.store.remove(rel, "lex", "_temporary")
+        # what the reducers wrote, so that committing does not read the table back for its checksums
+        self._written_crc = {mstep.part_name(s["part"]): s["crc32"] for s in summaries}
         sums = mstep.combine(summaries, self.directions, prune_below=self.cfg.prune_below)
         new_dense, metrics = {}, {}
         for d in self.directions:
@@ -240,7 +243,8 @@ class Trainer:
             "metrics": metrics,
             "dense": dense_to_json(dense),
             "seconds": seconds,
-            "table": {"path": "lex", "files": files, "crc32": self.store.checksums(rel, "lex")},
+            "table": {"path": "lex", "files": files,
+                      "crc32": self.store.checksums(rel, "lex", known=self._written_crc)},
             "config": self.cfg.to_dict(),
             "corpus_fingerprint": self.fingerprint,
             "committed_at": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),

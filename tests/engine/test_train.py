@@ -10,6 +10,7 @@ import pytest
 
 from spark_align.config import CorpusConfig
 from spark_align.engine.run import train
+from spark_align.store import RunStore
 from tests.engine.helpers import (TOY_SOURCE, TOY_TARGET, config, manifest, read_output, read_table,
                                   write_text)
 
@@ -93,6 +94,9 @@ def test_progress_lines_manifests_and_loglik_never_decreases(spark, tmp_path):
         assert m["iteration"] == it and m["stage"] == "ibm1"
         assert m["corpus_fingerprint"].startswith("text-sha256:")
         assert m["config"]["stages"][0] == {"model": "ibm1", "n_iter": 5, "options": {}}
+        # the reducers' checksums of what they wrote are those of the files as stored
+        rel = RunStore.checkpoint_dir(0, "ibm1", it)
+        assert m["table"]["crc32"] == RunStore(run_dir).checksums(rel, "lex") and len(m["table"]["crc32"]) >= 1
         logliks.append(m["metrics"]["forward"]["loglik"])
         assert m["metrics"]["forward"]["perplexity"] == pytest.approx(
             np.exp(-m["metrics"]["forward"]["loglik_per_word"]))
