@@ -178,11 +178,12 @@ def make_reducer(lex_url: str, n_parts: int, *, min_prob: float, prune_below: fl
         for _bucket, data in records:
             buffer.add(*decode(data))
         keys, hi, lo = buffer.result()
-        dirs, src, tgt = counts.split_keys(keys)
         summary = {"part": index, "dense": {}, "scalar": {}, "entries": {}, "pruned": {}}
+        special = np.flatnonzero(((keys >> 32) & np.int64(2 ** 30 - 1)) < 2)  # src < 0: dense, scalars
+        dirs, src, tgt = counts.split_keys(keys[special])
         for kind, code in (("dense", DENSE), ("scalar", SCALAR)):
             for k in np.flatnonzero(src == code):
-                summary[kind][(int(dirs[k]), int(tgt[k]))] = (int(hi[k]), int(lo[k]))
+                summary[kind][(int(dirs[k]), int(tgt[k]))] = (int(hi[special[k]]), int(lo[special[k]]))
         t_dir, t_src, t_tgt, prob = counts.normalise(keys, hi, lo, hi_scale=HI_SCALE, lo_scale=LO_SCALE,
                                                      min_prob=min_prob)
         if prune_below is not None:
@@ -192,8 +193,9 @@ def make_reducer(lex_url: str, n_parts: int, *, min_prob: float, prune_below: fl
                 summary["pruned"][int(d)] = (int(np.count_nonzero(below & sel)), float(prob[below & sel].sum()))
             keep = ~below
             t_dir, t_src, t_tgt, prob = t_dir[keep], t_src[keep], t_tgt[keep], prob[keep]
-        for d in np.unique(t_dir):
-            summary["entries"][int(d)] = int(np.count_nonzero(t_dir == d))
+        for d, n_d in enumerate(np.bincount(t_dir, minlength=len(DIRS))):
+            if n_d:
+                summary["entries"][d] = int(n_d)
         schema = TABLE_SCHEMA.with_metadata({BUCKET_META: str(index), BUCKETS_META: str(n_parts),
                                              KEYS_META: keys_digest(t_dir, t_src, t_tgt)})
         table = pa.Table.from_arrays([pa.array(t_dir), pa.array(t_src), pa.array(t_tgt), pa.array(prob)],

@@ -59,21 +59,31 @@ MERGE_RUNS = 16  # at most this many sorted runs are merged directly
 
 @njit(cache=True, nogil=True)
 def _merge_runs(keys, hi, lo, starts, ends, out_keys, out_hi, out_lo):  # pragma: no cover
+    # Runs not yet exhausted are kept first in pos/end, so each row scans only the live runs (most
+    # runs in a reducer are a task's few dense-statistic and scalar rows, exhausted early).
     pos = starts.copy()
+    end = ends.copy()
+    live = 0
+    for r in range(len(pos)):
+        if pos[r] < end[r]:
+            pos[live] = pos[r]
+            end[live] = end[r]
+            live += 1
     m = -1
-    while True:
-        best = -1
-        best_key = np.int64(0)
-        for r in range(len(pos)):
-            if pos[r] < ends[r]:
-                k = keys[pos[r]]
-                if best < 0 or k < best_key:
-                    best = r
-                    best_key = k
-        if best < 0:
-            break
+    while live > 0:
+        best = 0
+        best_key = keys[pos[0]]
+        for r in range(1, live):
+            k = keys[pos[r]]
+            if k < best_key:
+                best = r
+                best_key = k
         j = pos[best]
         pos[best] += 1
+        if pos[best] == end[best]:
+            live -= 1
+            pos[best] = pos[live]
+            end[best] = end[live]
         if m >= 0 and out_keys[m] == best_key:
             out_hi[m] += hi[j]
             out_lo[m] += lo[j]
@@ -149,25 +159,62 @@ def normalise(keys: np.ndarray, hi: np.ndarray, lo: np.ndarray, *, hi_scale: flo
               min_prob: float):
     """M-step for the lexical rows of reduced counts (each conditioning word's rows all present).
 
-    Returns (dir, src, tgt, prob) sorted by (dir, src, tgt): prob = count / total of its conditioning
-    word, both read from integer sums, floored at ``min_prob``.
+    ``keys`` ascending and distinct (as :func:`reduce_sorted` gives them). Returns (dir, src, tgt, prob)
+    sorted by (dir, src, tgt): prob = count / total of its conditioning word, both read from integer
+    sums (:func:`from_fixed`), floored at ``min_prob``. One compiled pass per direction (0.07 s in numpy
+    for one reducer's 4.7M rows at 200k pairs, most of it the reverse totals' scattered adds).
     """
-    dirs, src, tgt = split_keys(keys)
-    lex = src >= 0
-    dirs, src, tgt, hi, lo = dirs[lex], src[lex], tgt[lex], hi[lex], lo[lex]
-    total = np.empty(len(hi))
-    for d, cond in ((0, src), (1, tgt)):
-        sel = dirs == d
-        if not sel.any():
+    keys, hi, lo = (np.ascontiguousarray(a, np.int64) for a in (keys, hi, lo))
+    n_tgt = int((keys & _LOW32).max()) + 1 if len(keys) else 0
+    out = (np.empty(len(keys), np.int8), np.empty(len(keys), np.int32), np.empty(len(keys), np.int32),
+           np.empty(len(keys), np.float64))
+    m = _normalise(keys, hi, lo, 1.0 / hi_scale, 1.0 / (hi_scale * lo_scale), float(min_prob),
+                   np.zeros(n_tgt, np.int64), np.zeros(n_tgt, np.int64), *out)
+    return tuple(a[:m] for a in out)
+
+
+@njit(cache=True, nogil=True)
+def _normalise(keys, hi, lo, inv_hi, inv_lo, min_prob, t_hi, t_lo, o_dir, o_src, o_tgt, o_prob):  # pragma: no cover
+    n = len(keys)
+    for i in range(n):  # reverse totals: per target word (direction 1 conditions on tgt)
+        k = keys[i]
+        if (k >> 62) == 1 and ((k >> 32) & 0x3FFFFFFF) >= 2:
+            t = k & 0xFFFFFFFF
+            t_hi[t] += hi[i]
+            t_lo[t] += lo[i]
+    m = 0
+    i = 0
+    while i < n:
+        k = keys[i]
+        d = k >> 62
+        s = ((k >> 32) & 0x3FFFFFFF) - 2
+        if s < 0:  # dense statistics and scalars
+            i += 1
             continue
-        c = cond[sel]
-        t_hi = np.zeros(int(c.max()) + 1, np.int64)
-        t_lo = np.zeros(int(c.max()) + 1, np.int64)
-        np.add.at(t_hi, c, hi[sel])
-        np.add.at(t_lo, c, lo[sel])
-        total[sel] = from_fixed(t_hi, t_lo, hi_scale, lo_scale)[c]
-    count = from_fixed(hi, lo, hi_scale, lo_scale)
-    return dirs, src, tgt, np.maximum(count / total, min_prob)
+        j = i
+        if d == 0:  # forward: the conditioning word's rows are consecutive
+            s_hi = 0
+            s_lo = 0
+            while j < n and (keys[j] >> 32) == (k >> 32):
+                s_hi += hi[j]
+                s_lo += lo[j]
+                j += 1
+        else:
+            j = i + 1
+        for r in range(i, j):
+            t = keys[r] & 0xFFFFFFFF
+            if d == 0:
+                total = s_hi * inv_hi + s_lo * inv_lo
+            else:
+                total = t_hi[t] * inv_hi + t_lo[t] * inv_lo
+            p = (hi[r] * inv_hi + lo[r] * inv_lo) / total
+            o_dir[m] = d
+            o_src[m] = s
+            o_tgt[m] = t
+            o_prob[m] = p if (p >= min_prob or p != p) else min_prob
+            m += 1
+        i = j
+    return m
 
 
 @njit(cache=True, nogil=True)

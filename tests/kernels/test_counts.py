@@ -88,6 +88,35 @@ def test_normalise_gives_conditional_probabilities_per_direction():
     assert got == {(0, 1, 1): 0.75, (0, 1, 2): 0.25, (1, 0, 1): 0.5, (1, 1, 1): 0.5}
 
 
+def _normalise_with_numpy(keys, hi, lo, min_prob):
+    """A plain rendering of the M-step: totals per conditioning word with np.add.at."""
+    dirs, src, tgt = counts.split_keys(keys)
+    lex = src >= 0
+    dirs, src, tgt, hi, lo = dirs[lex], src[lex], tgt[lex], hi[lex], lo[lex]
+    total = np.empty(len(hi))
+    for d, cond in ((0, src), (1, tgt)):
+        sel = dirs == d
+        if sel.any():
+            t_hi, t_lo = np.zeros(int(cond[sel].max()) + 1, np.int64), np.zeros(int(cond[sel].max()) + 1, np.int64)
+            np.add.at(t_hi, cond[sel], hi[sel])
+            np.add.at(t_lo, cond[sel], lo[sel])
+            total[sel] = counts.from_fixed(t_hi, t_lo, HI, LO)[cond[sel]]
+    return dirs, src, tgt, np.maximum(counts.from_fixed(hi, lo, HI, LO) / total, 1e-12)
+
+
+def test_normalise_equals_a_plain_numpy_rendering_bit_for_bit():
+    rng = np.random.default_rng(14)
+    dirs, src, tgt, values = _rows(rng, 30000, n_src=400, n_tgt=500)
+    values = values * rng.choice([1e-18, 1e-3, 1.0, 1e6], len(values))  # tiny (floored) to large counts
+    keys, h, lo_sum = counts.reduce_sorted(counts.row_keys(dirs, src, tgt), *estep.to_fixed(values))
+    got = counts.normalise(keys, h, lo_sum, hi_scale=HI, lo_scale=LO, min_prob=1e-12)
+    want = _normalise_with_numpy(keys, h, lo_sum, 1e-12)
+    assert len(got[0]) == len(want[0]) > 20000 and (got[3] == 1e-12).any()
+    for g, w in zip(got, want):
+        assert g.dtype == w.dtype
+        np.testing.assert_array_equal(g, w)
+
+
 def test_normalise_floors_tiny_probabilities():
     dirs = np.zeros(2, np.int8)
     src = np.ones(2, np.int32)
