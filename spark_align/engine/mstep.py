@@ -34,7 +34,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from spark_align.engine.estep import DENSE, HI_SCALE, LO_SCALE, SCALAR, to_fixed
-from spark_align.engine.tables import BUCKET_META, BUCKETS_META, DIRS, KEYS_META, keys_digest
+from spark_align.engine.tables import BUCKET_META, BUCKETS_META, DIRS, KEYS_META, keys_digest, worker_scratch
 from spark_align.kernels import counts
 from spark_align.store import BUCKET_PROTOCOLS
 
@@ -93,8 +93,21 @@ class TaskCounts:
         if d not in self.acc:
             table = self.tables[DIRS[d]]
             n = len(table.keys)
-            self.acc[d] = (np.zeros((n, 2), np.int64), np.zeros(n, bool), table.keys)
+            spare = worker_scratch().pop(("spare accumulators", d), None)
+            if spare is None or len(spare[1]) != n:
+                spare = (np.zeros((n, 2), np.int64), np.zeros(n, bool))
+            self.acc[d] = (*spare, table.keys)
         return self.acc[d]
+
+    def _release(self) -> None:
+        """Zero the accumulators and keep them for the Python worker's next task with the same table
+        (``engine.tables.worker_scratch``): a fresh 75 MB array cost up to 0.1 s of page faults on first
+        touch, zeroing it again 0.01 s."""
+        for d, (acc, touched, _keys) in self.acc.items():
+            acc.fill(0)
+            touched.fill(False)
+            worker_scratch()[("spare accumulators", d)] = (acc, touched)
+        self.acc = {}
 
     def payloads(self, n_buckets: int):
         """(bucket, bytes) records: every count of this task, one record per non-empty bucket."""
@@ -105,6 +118,7 @@ class TaskCounts:
             # Cost follows the table (sequential passes) and the entries this task touched.
             for bucket, segment in counts.encode_touched(touched, table_keys, d, n_buckets, acc).items():
                 by_bucket.setdefault(bucket, []).append(segment)
+        self._release()
         for bucket in sorted(by_bucket):
             yield bucket, b"".join(by_bucket[bucket])
 

@@ -83,6 +83,7 @@ def uniform_tables(directions: tuple[str, ...], src_vocab_size: int, tgt_vocab_s
 
 _WORKER_CACHE: dict = {}
 _LAYOUT = "layout"  # the cache's entry for the last table's TableLayout
+_SCRATCH = "scratch"  # the cache's entry for worker_scratch()
 
 
 @dataclass(frozen=True)
@@ -119,6 +120,12 @@ class TableSource:
 
     def unpersist(self) -> None:
         """Nothing to free on the driver (kept so callers can treat it like a broadcast)."""
+
+
+def worker_scratch() -> dict:
+    """Arrays a Python worker keeps between tasks for as long as it keeps its current table (freed
+    with it when the next table is read, so they never outlive it)."""
+    return _WORKER_CACHE.setdefault(_SCRATCH, {})
 
 
 def table_source(table_path: str | None, directions: tuple[str, ...], src_vocab_size: int,
