@@ -98,12 +98,16 @@ def _merge_runs(keys, hi, lo, starts, ends, out_keys, out_hi, out_lo):  # pragma
 class CountBuffer:
     """Accumulates (key, hi, lo) rows and folds duplicates when it grows (memory ~ distinct keys).
 
-    ``compact_rows``: fold once this many rows are buffered beyond the last fold's result.
+    ``compact_rows``: fold once this many rows are buffered beyond the last fold's result. Rows come
+    as arrays (:meth:`add`) or as payloads (:meth:`add_payload`), which stay encoded (7-8 bytes per
+    row instead of 24) until a fold decodes them straight into the arrays it merges.
     """
 
     def __init__(self, compact_rows: int = 4_000_000) -> None:
         self.compact_rows = compact_rows
         self._parts: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []
+        self._payloads: list = []
+        self._payload_rows = 0
         self._pending = 0
         self._folded = 0
 
@@ -111,23 +115,46 @@ class CountBuffer:
         if len(keys) == 0:
             return
         self._parts.append((keys, hi, lo))
-        self._pending += len(keys)
+        self._grew(len(keys))
+
+    def add_payload(self, data) -> None:
+        """Rows of a payload (:func:`decode_rows`); ValueError if it is not one."""
+        rows = sum(r for _start, r, _n in _segments(np.frombuffer(data, np.uint8)))
+        if rows:
+            self._payloads.append(data)
+            self._payload_rows += rows
+            self._grew(rows)
+
+    def _grew(self, rows: int) -> None:
+        self._pending += rows
         if self._pending > max(self.compact_rows, self._folded):
             self._fold()
 
     def _fold(self) -> None:
-        keys, hi, lo = (np.concatenate(x) for x in zip(*self._parts))
+        if len(self._parts) == 1 and not self._payloads:
+            keys, hi, lo = self._parts[0]
+        else:
+            # one allocation for everything buffered: no concatenation of decoded parts
+            n = sum(len(p[0]) for p in self._parts) + self._payload_rows
+            keys, hi, lo = (np.empty(n, np.int64) for _ in range(3))
+            at = 0
+            for part in self._parts:
+                for dest, src in zip((keys, hi, lo), part):
+                    dest[at:at + len(part[0])] = src
+                at += len(part[0])
+            for data in self._payloads:
+                at = _decode_into(data, keys, hi, lo, at)
         folded = reduce_sorted(keys, hi, lo)
-        self._parts = [folded]
+        self._parts, self._payloads, self._payload_rows = [folded], [], 0
         self._folded = len(folded[0])
         self._pending = 0
 
     def result(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """(unique keys ascending, hi sums, lo sums)."""
-        if not self._parts:
+        if not self._parts and not self._payloads:
             empty = np.zeros(0, np.int64)
             return empty, empty, empty
-        if len(self._parts) > 1 or self._pending:
+        if len(self._parts) > 1 or self._payloads or self._pending:
             self._fold()
         return self._parts[0]
 
@@ -398,11 +425,9 @@ def _decode_rows(data, o, end, rows, keys, hi, lo, at):  # pragma: no cover
     return o
 
 
-def decode_rows(data) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(keys, hi, lo) of a payload (segments of :func:`encode_rows` / :func:`encode_touched`, joined);
-    ValueError if ``data`` is not one."""
-    buf = np.frombuffer(data, np.uint8)
-    segments, o, total = [], 0, 0
+def _segments(buf: np.ndarray) -> list[tuple[int, int, int]]:
+    """(start of rows, rows, bytes) of every segment of a payload; ValueError if a header does not fit."""
+    segments, o = [], 0
     while o < len(buf):
         if o + _SEGMENT_HEADER > len(buf):
             raise ValueError("truncated payload segment header")
@@ -411,11 +436,23 @@ def decode_rows(data) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
             raise ValueError("payload segment header does not fit the payload")
         segments.append((o + _SEGMENT_HEADER, rows, n_bytes))
         o += _SEGMENT_HEADER + n_bytes
-        total += rows
-    keys, hi, lo = (np.empty(total, np.int64) for _ in range(3))
-    at = 0
-    for start, rows, n_bytes in segments:
-        if _decode_rows(buf, start, start + n_bytes, rows, keys, hi, lo, at) != start + n_bytes:
+    return segments
+
+
+def _decode_into(data, keys: np.ndarray, hi: np.ndarray, lo: np.ndarray, at: int) -> int:
+    """Decode a payload's rows into the arrays from index ``at``; returns the index after them."""
+    buf = np.frombuffer(data, np.uint8)
+    for start, rows, n_bytes in _segments(buf):
+        if at + rows > len(keys) or _decode_rows(buf, start, start + n_bytes, rows, keys, hi, lo, at) != start + n_bytes:
             raise ValueError("payload segment does not hold the rows its header says")
         at += rows
+    return at
+
+
+def decode_rows(data) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(keys, hi, lo) of a payload (segments of :func:`encode_rows` / :func:`encode_touched`, joined);
+    ValueError if ``data`` is not one."""
+    n = sum(rows for _start, rows, _n in _segments(np.frombuffer(data, np.uint8)))
+    keys, hi, lo = (np.empty(n, np.int64) for _ in range(3))
+    _decode_into(data, keys, hi, lo, 0)
     return keys, hi, lo

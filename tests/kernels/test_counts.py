@@ -61,7 +61,7 @@ def test_payloads_partition_rows_by_conditioning_word_and_round_trip():
     seen_cond: dict[tuple[int, int], int] = {}
     parts = []
     for bucket, data in mstep.payloads(buf, 5):
-        k, a, b = mstep.decode(bytearray(data))  # Spark hands binary values back as bytearray
+        k, a, b = counts.decode_rows(bytearray(data))  # Spark hands binary values back as bytearray
         parts.append((k, a, b))
         d, s, t = counts.split_keys(k)
         for di, si, ti in zip(d.tolist(), s.tolist(), t.tolist()):
@@ -148,7 +148,7 @@ def test_table_aligned_task_counts_equal_the_plain_buffer():
             all_tgt = np.concatenate([tgt, other[1]])
             hi, lo = estep.to_fixed(np.concatenate([values[emitted], other[2]]))
             mstep.fold_rows(plain, np.full(len(all_src), d, np.int8), all_src, all_tgt, hi, lo)
-    got = [mstep.decode(data) for _, data in task.payloads(3)]
+    got = [counts.decode_rows(data) for _, data in task.payloads(3)]
     k, a, b = (np.concatenate(x) for x in zip(*got))
     order = np.argsort(k)
     keys, h, lo_sum = plain.result()
@@ -293,3 +293,25 @@ def test_encode_touched_equals_gathering_by_bucket_then_encoding(d):
         np.testing.assert_array_equal(lo, acc[want, 1])
         assert np.array_equal(counts.buckets_of(k, 7), np.full(len(k), b))
     assert counts.encode_touched(np.zeros(n, bool), table_keys, d, 7, acc) == {}
+
+
+def test_count_buffer_folds_payloads_and_arrays_alike():
+    """Payloads stay encoded until a fold decodes them in place; the sums equal a fold of the arrays."""
+    rng = np.random.default_rng(15)
+    dirs, src, tgt, values = _rows(rng, 20000, n_src=300, n_tgt=300)
+    hi, lo = estep.to_fixed(values)
+    keys = counts.row_keys(dirs, src, tgt)
+    want = counts.reduce_sorted(*(a[np.argsort(keys, kind="stable")] for a in (keys, hi, lo)))
+    for compact_rows in (10 ** 9, 3000):
+        buf = counts.CountBuffer(compact_rows=compact_rows)
+        for i, chunk in enumerate(np.array_split(np.arange(len(keys)), 12)):
+            part = counts.reduce_sorted(*(a[chunk][np.argsort(keys[chunk], kind="stable")] for a in (keys, hi, lo)))
+            if i % 3:
+                buf.add_payload(bytearray(counts.encode_rows(*part)))
+            else:
+                buf.add(*part)
+        buf.add_payload(counts.encode_rows(keys[:0], hi[:0], lo[:0]))  # no rows: nothing to do
+        for g, w in zip(buf.result(), want):
+            np.testing.assert_array_equal(g, w)
+    with pytest.raises(ValueError):
+        counts.CountBuffer().add_payload(b"\x01" * 10)
