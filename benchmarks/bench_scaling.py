@@ -33,8 +33,9 @@ core time:
 * ``outside_compute``: the same with the lookup and the accumulation counted as E-step
   computation: ``1 - (kernel + lookup + accumulation seconds) / (iteration seconds x cores)``;
 * ``exponent``: the slope of log(iteration seconds) against log(pairs) over the sizes run;
-* ``task_rss_mb``: peak resident memory of the E-step's Python workers (``ru_maxrss`` noted by
-  each E-step task when ``SPARK_ALIGN_BENCH_TASK_MEMORY_DIR`` is set; max over tasks);
+* ``task_rss_mb``: peak resident memory of the Python workers, which run the E-step tasks and then
+  the reducers (``ru_maxrss`` noted at the end of each E-step task and each reducer when
+  ``SPARK_ALIGN_BENCH_TASK_MEMORY_DIR`` is set; max over them);
 * ``output_s``: seconds of the output pass (decoding every pair, joining to the corpus, writing;
   ``output.json``);
 * ``driver_rss_mb``: peak resident memory of the driver's Python process (it plans the jobs and

@@ -206,7 +206,7 @@ def rows_batch(parts: list[tuple[np.ndarray, ...]]) -> pa.RecordBatch:
         names=["dir", "src", "tgt", "hi", "lo"])
 
 
-# Benchmark-only: when set (to a directory), each E-step task appends its Python worker's peak
+# Benchmark-only: when set (to a directory), each E-step task and reducer appends its Python worker's peak
 # resident memory there, so benchmarks/bench_scaling.py can report peak memory per executor task.
 MEMORY_ENV = "SPARK_ALIGN_BENCH_TASK_MEMORY_DIR"
 

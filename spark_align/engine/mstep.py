@@ -33,7 +33,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from spark_align.engine.estep import DENSE, HI_SCALE, LO_SCALE, SCALAR, to_fixed
+from spark_align.engine.estep import DENSE, HI_SCALE, LO_SCALE, SCALAR, note_task_memory, to_fixed
 from spark_align.engine.tables import BUCKET_META, BUCKETS_META, DIRS, KEYS_META, keys_digest, worker_scratch
 from spark_align.kernels import counts
 from spark_align.store import BUCKET_PROTOCOLS
@@ -226,6 +226,7 @@ def make_reducer(lex_url: str, n_parts: int, *, min_prob: float, prune_below: fl
             fh.write(memoryview(data))
         fs.mv(tmp, posixpath.join(root, part_name(index)))
         summary["seconds"] = time.perf_counter() - started
+        note_task_memory("reduce")
         yield summary
 
     return reduce
