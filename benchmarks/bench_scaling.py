@@ -106,7 +106,7 @@ def _child_train(args) -> None:
 
     os.environ[MEMORY_ENV] = args.memdir  # inherited by the Python workers
     spark = get_session(f"local[{args.cores}]", {"spark.sql.shuffle.partitions": str(2 * args.cores),
-                                                 "spark.driver.memory": "6g"})
+                                                 "spark.driver.memory": "6g", **json.loads(args.conf_json)})
     cfg = RunConfig(corpus=CorpusConfig(path=args.corpus), stages=parse_stages(args.stages),
                     block_size=args.block_size, shipping=args.shipping, prune_below=args.prune_below)
     started = time.time()
@@ -138,7 +138,7 @@ def _child_train(args) -> None:
 
 
 def run_config(work: Path, pairs: int, *, vocab: int, shipping: str, block_size: int, stages: str,
-               cores: int, prune_below: float | None = None, skip: int = 2) -> dict:
+               cores: int, prune_below: float | None = None, skip: int = 2, conf: dict | None = None) -> dict:
     corpus = work / f"corpus-{pairs}-{vocab}"
     if not (corpus / "_done").exists():
         subprocess.run([sys.executable, __file__, "_generate", "--pairs", str(pairs), "--vocab", str(vocab),
@@ -148,7 +148,8 @@ def run_config(work: Path, pairs: int, *, vocab: int, shipping: str, block_size:
     os.rmdir(run)
     memdir = tempfile.mkdtemp(dir=work, prefix="mem-")
     cmd = [sys.executable, __file__, "_ingest", "--corpus", str(corpus), "--run", str(run), "--memdir", memdir,
-           "--shipping", shipping, "--block-size", str(block_size), "--stages", stages, "--cores", str(cores)]
+           "--shipping", shipping, "--block-size", str(block_size), "--stages", stages, "--cores", str(cores),
+           "--conf-json", json.dumps(conf or {})]
     if prune_below is not None:
         cmd += ["--prune-below", str(prune_below)]
     subprocess.run(cmd, check=True, stdout=subprocess.DEVNULL)
@@ -158,6 +159,7 @@ def run_config(work: Path, pairs: int, *, vocab: int, shipping: str, block_size:
     first = stages.split(",")[0].split(":")[0]
     later = [r for r in result["iterations"] if not (r["stage"] == first and r["iteration"] <= skip)]
     result.update(pairs=pairs, vocab=vocab, shipping_mode=shipping, block_size=block_size, cores=cores,
+                  conf=conf or {},
                   load_avg=os.getloadavg()[0])
     if later:
         # Seconds per iteration: the median; shares: of the same iterations' total core time, so that
@@ -209,6 +211,7 @@ def main() -> None:
         for name in ("--pairs", "--vocab", "--block-size", "--cores"):
             p.add_argument(name, type=int)
         p.add_argument("--prune-below", type=float)
+        p.add_argument("--conf-json", default="{}")
         args = p.parse_args(sys.argv[2:])
         {"_generate": _child_generate, "_ingest": _child_ingest, "_train": _child_train}[sys.argv[1]](args)
         return
@@ -230,7 +233,10 @@ def main() -> None:
     parser.add_argument("--prune", type=float, default=None, help="instead: one size with and without pruning")
     parser.add_argument("--work", default=str(HERE / "_build" / "scaling"))
     parser.add_argument("--jsonl", default=None, help="also append every result to this file")
+    parser.add_argument("--conf", action="append", default=[], metavar="KEY=VALUE",
+                        help="a Spark setting for the training sessions, e.g. spark.spark_align.estepTasksPerCore=1")
     args = parser.parse_args()
+    conf = dict(c.split("=", 1) for c in args.conf)
     work = Path(args.work)
     work.mkdir(parents=True, exist_ok=True)
 
@@ -246,20 +252,21 @@ def main() -> None:
         for vocab, block in (tuple(int(x) for x in c.split(":")) for c in args.memory_configs.split(",")):
             for shipping in ("broadcast", "join"):
                 record(run_config(work, n, vocab=vocab, shipping=shipping, block_size=block, stages=args.stages,
-                                  skip=args.skip, cores=args.cores))
+                                  skip=args.skip, cores=args.cores, conf=conf))
         return
     if args.prune is not None:
         n = int(args.sizes.split(",")[0])
         for prune in (None, args.prune):
             r = record(run_config(work, n, vocab=args.vocab, shipping=args.shipping, block_size=args.block_size,
-                                  stages=args.stages, skip=args.skip, cores=args.cores, prune_below=prune))
+                                  stages=args.stages, skip=args.skip, cores=args.cores, prune_below=prune, conf=conf))
             last = r["iterations"][-1]
             print(f"  prune {prune}: final loglik/word {last['loglik_per_word']:.5f}; per iteration: "
                   + "; ".join(f"{x['iteration']}: {x['loglik_per_word']:.5f} pruned {x['pruned']}"
                               for x in r["iterations"]))
         return
     results = [record(run_config(work, int(n), vocab=args.vocab, shipping=args.shipping,
-                                 block_size=args.block_size, stages=args.stages, skip=args.skip, cores=args.cores))
+                                 block_size=args.block_size, stages=args.stages, skip=args.skip, cores=args.cores,
+                                 conf=conf))
                for n in args.sizes.split(",")]
     xs = [math.log(r["pairs"]) for r in results]
     ys = [math.log(r["iter_s"]) for r in results]
