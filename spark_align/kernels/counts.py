@@ -16,6 +16,8 @@ import numpy as np
 from numba import njit
 from numba.cpython.unsafe.numbers import leading_zeros
 
+from spark_align.kernels.prefetch import AHEAD, prefetch
+
 MAX_ID = 2 ** 30 - 2  # ids (and dense indexes) must stay below this
 FIELDS = ("dir", "src", "tgt", "hi", "lo")
 _LOW32 = np.int64(0xFFFFFFFF)
@@ -248,6 +250,10 @@ def _normalise(keys, hi, lo, inv_hi, inv_lo, min_prob, t_hi, t_lo, o_dir, o_src,
 def _add_at(pos, hit, emitted, values, hi_scale, lo_scale, acc, touched, miss):  # pragma: no cover
     n_miss = 0
     for i in range(len(values)):
+        j = i + AHEAD
+        if j < len(values) and hit[j]:
+            prefetch(acc, pos[j])
+            prefetch(touched, pos[j])
         if not emitted[i]:
             continue
         if hit[i]:

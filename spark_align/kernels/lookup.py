@@ -12,6 +12,8 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
+from spark_align.kernels.prefetch import AHEAD, prefetch
+
 
 @njit(cache=True, nogil=True)
 def _search_kernel(table_keys, keys, hints, pos_out, hit_out, table_values, default, values_out,
@@ -22,6 +24,12 @@ def _search_kernel(table_keys, keys, hints, pos_out, hit_out, table_values, defa
     stale = 0
     pos = 0
     for i in range(len(keys)):
+        if with_hints and i + AHEAD < len(keys):
+            ahead = hints[i + AHEAD]
+            if 0 <= ahead < n:
+                prefetch(table_keys, ahead)
+                if with_values:
+                    prefetch(table_values, ahead)
         k = keys[i]
         lo = -1
         found = False
