@@ -89,9 +89,10 @@ def find_hinted(table_keys: np.ndarray, table_values: np.ndarray, keys: np.ndarr
                 hints: np.ndarray | None) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, int]:
     """:func:`find` starting from ``hints``, the insertion points an earlier search returned.
 
-    A hint is checked against its two neighbours in the table (two reads, usually one cache line), so
-    a wrong or outdated hint can cost time but never change a result; only keys whose hint fails are
-    searched for. Returns (positions, found, values, insertion points, number of keys searched for);
+    A hint is checked in the table (one read where the key is there; for an absent key, its two
+    neighbours must bracket it), so a wrong or outdated hint can cost time but never change a result;
+    only keys whose hint fails are searched for. The table lines of the hints 64 keys ahead are
+    prefetched. Returns (positions, found, values, insertion points, number of keys searched for);
     the insertion points are the hints for the next call. ``hints=None``: every key is searched for.
     """
     if hints is not None and len(hints) != len(keys):
