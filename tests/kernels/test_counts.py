@@ -315,3 +315,46 @@ def test_count_buffer_folds_payloads_and_arrays_alike():
             np.testing.assert_array_equal(g, w)
     with pytest.raises(ValueError):
         counts.CountBuffer().add_payload(b"\x01" * 10)
+
+
+@pytest.mark.parametrize("compact_rows", [10 ** 9, 2500])
+def test_payloads_are_merged_as_they_are_decoded(compact_rows):
+    """Sorted payload segments are merged while they are decoded (no decoded copy); unsorted segments
+    and more runs than MERGE_RUNS take the decode-and-sort path; all give the same sums."""
+    rng = np.random.default_rng(16)
+    dirs, src, tgt, values = _rows(rng, 30000, n_src=300, n_tgt=300)
+    hi, lo = estep.to_fixed(values)
+    keys = counts.row_keys(dirs, src, tgt)
+    want = counts.reduce_sorted(*(a[np.argsort(keys, kind="stable")] for a in (keys, hi, lo)))
+
+    def sorted_part(idx):
+        return counts.reduce_sorted(*(a[idx][np.argsort(keys[idx], kind="stable")] for a in (keys, hi, lo)))
+
+    chunks = np.array_split(rng.permutation(len(keys)), 40)
+    few = [counts.encode_rows(*sorted_part(np.concatenate(chunks[i:i + 5]))) for i in range(0, 40, 5)]
+    merged = counts._merge_payloads(None, few, len(keys))  # 8 sorted segments: merged as decoded
+    assert merged is not None
+    for g, w in zip(merged, want):
+        np.testing.assert_array_equal(g, w)
+    assert counts._merge_payloads(None, [counts.encode_rows(keys[c], hi[c], lo[c]) for c in chunks[:8]],
+                                  sum(len(c) for c in chunks[:8])) is None  # unsorted: decode and sort
+    cases = {
+        "sorted, eight payloads": few,
+        "sorted, joined in threes": [b"".join(counts.encode_rows(*sorted_part(c)) for c in chunks[i:i + 3])
+                                     for i in range(0, 40, 3)],
+        "many segments in one payload": [b"".join(counts.encode_rows(*sorted_part(c)) for c in chunks)],
+        "unsorted segments": [counts.encode_rows(keys[c], hi[c], lo[c]) for c in chunks],
+    }
+    for name, payloads in cases.items():
+        buf = counts.CountBuffer(compact_rows=compact_rows)
+        for data in payloads:
+            buf.add_payload(data)
+        for g, w in zip(buf.result(), want):
+            np.testing.assert_array_equal(g, w, err_msg=name)
+    good = counts.encode_rows(*sorted_part(chunks[0]))
+    damaged = good[:16] + good[16:-1] + bytes([good[-1] | 0x80])  # the last integer never ends
+    buf = counts.CountBuffer()
+    buf.add_payload(good)
+    buf.add_payload(damaged)
+    with pytest.raises(ValueError):
+        buf.result()
