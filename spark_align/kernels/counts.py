@@ -86,14 +86,20 @@ def _merge_runs(keys, hi, lo, starts, ends, out_keys, out_hi, out_lo):  # pragma
             live -= 1
             pos[best] = pos[live]
             end[best] = end[live]
-        if m >= 0 and out_keys[m] == best_key:
-            out_hi[m] += hi[j]
-            out_lo[m] += lo[j]
-        else:
-            m += 1
-            out_keys[m] = best_key
-            out_hi[m] = hi[j]
-            out_lo[m] = lo[j]
+        m = _emit(out_keys, out_hi, out_lo, m, best_key, hi[j], lo[j])
+    return m + 1
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _emit(out_keys, out_hi, out_lo, m, key, h, lo):  # pragma: no cover
+    # add the row to output row m if it has the same key, else start row m + 1; returns the last row
+    if m >= 0 and out_keys[m] == key:
+        out_hi[m] += h
+        out_lo[m] += lo
+        return m
+    out_keys[m + 1] = key
+    out_hi[m + 1] = h
+    out_lo[m + 1] = lo
     return m + 1
 
 
@@ -419,6 +425,8 @@ def _get(data, o, end):  # pragma: no cover
 
 @njit(cache=True, nogil=True)
 def _decode_rows(data, o, end, rows, keys, hi, lo, at):  # pragma: no cover
+    # The row's three reads are written out here and in _merge_segments: one helper returning the row
+    # as a tuple made both 2-3x slower (0.20 s against 0.07 s for 4.6M rows).
     prev = np.int64(0)
     for i in range(at, at + rows):
         step, o = _get(data, o, end)
@@ -509,14 +517,7 @@ def _merge_segments(data, starts, ends, rows, fk, fh, fl, out_keys, out_hi, out_
             if head_key[r] < best_key:
                 best = r
                 best_key = head_key[r]
-        if m >= 0 and out_keys[m] == best_key:
-            out_hi[m] += head_hi[best]
-            out_lo[m] += head_lo[best]
-        else:
-            m += 1
-            out_keys[m] = best_key
-            out_hi[m] = head_hi[best]
-            out_lo[m] = head_lo[best]
+        m = _emit(out_keys, out_hi, out_lo, m, best_key, head_hi[best], head_lo[best])
         if left[best] == 0:  # exhausted: the last live run takes its place
             if run[best] > 0 and pos[best] != end[best]:
                 return -1
