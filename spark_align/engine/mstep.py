@@ -112,8 +112,8 @@ class TaskCounts:
     def payloads(self, n_buckets: int):
         """(bucket, bytes) records: every count of this task, one record per non-empty bucket."""
         by_bucket: dict[int, list[bytes]] = {}
-        for bucket, part in _split_arrays(*self.buffer.result(), n_buckets):
-            by_bucket.setdefault(bucket, []).append(counts.encode_rows(*part))
+        for bucket, data in payloads(self.buffer, n_buckets):
+            by_bucket.setdefault(bucket, []).append(data)
         for d, (acc, touched, table_keys) in sorted(self.acc.items()):
             # Cost follows the table (sequential passes) and the entries this task touched.
             for bucket, segment in counts.encode_touched(touched, table_keys, d, n_buckets, acc).items():
