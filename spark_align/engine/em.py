@@ -181,6 +181,7 @@ class Trainer:
                           "payload_seconds": sums[d]["scalar"].get(8, 0.0),
                           "lookup_keys_searched": sums[d]["scalar"].get(9, 0.0),
                           "lookup_keys": sums[d]["scalar"].get(10, 0.0),
+                          "lookup_keys_trusted": sums[d]["scalar"].get(11, 0.0),
                           "reduce_task_seconds": float(sum(s["seconds"] for s in summaries)),
                           "job_seconds": job_seconds, "reducers": n_parts,
                           "shipping": path, "table_entries": n_entries, "new_table_entries": sums[d]["entries"]}

@@ -16,7 +16,8 @@ join path (``engine.shipping``) each block's rows are emitted as they are
   blocks' entries in the table (the lookup), ``5`` adding counts into the task's accumulators,
   ``6`` loading the table (first task of a Python worker per iteration), ``7`` reading blocks and
   ``8`` preparing the task's output records; per direction, ``9`` dictionary keys the lookup had
-  to search for (no usable stored hint, ``engine.hints``) and ``10`` keys it looked up).
+  to search for (no usable stored hint, ``engine.hints``), ``10`` keys it looked up and ``11`` keys
+  whose stored positions it took as they are).
 
 Counts leave the task as 64-bit fixed point in two parts (``v = hi / 2^20 +
 lo / 2^50``, error below 1e-15 per value) and are summed as integers.
@@ -35,7 +36,7 @@ import pyarrow as pa
 
 from spark_align.engine import faults
 from spark_align.engine.ingest import blocks_from_batch
-from spark_align.engine.tables import DIRS
+from spark_align.engine.tables import DIRS, MIN_PROB
 from spark_align.kernels import ragged
 
 STATS_SCHEMA = "dir byte, src int, tgt int, hi long, lo long"
@@ -89,6 +90,7 @@ def make_estep(model, directions: tuple[str, ...], tables_src, dense: dict[str, 
         import fsspec
 
         from spark_align.engine import hints, mstep
+        from spark_align.kernels import lookup
 
         _maybe_fail()
         started = time.perf_counter()
@@ -101,55 +103,83 @@ def make_estep(model, directions: tuple[str, ...], tables_src, dense: dict[str, 
         lookup_seconds = add_seconds = read_seconds = 0.0
         searched_total = dict.fromkeys(directions, 0)
         keys_total = dict.fromkeys(directions, 0)
+        trusted_total = dict.fromkeys(directions, 0)
         for path, row_group in units:
+            looked_up = time.perf_counter()
+            stored = {d: hints.read(hints_fs, hints_root, d, path, row_group) for d in hinted}
+            trusted = {d for d in hinted if _exact_for(stored[d], tables[d])}
+            lookup_seconds += time.perf_counter() - looked_up
             read_started = time.perf_counter()
-            blocks = [block for batch in mstep.read_unit(fs, path, row_group)
-                      for _block_id, _rows, block in blocks_from_batch(batch)]
+            blocks = read_blocks(fs, path, row_group, with_keys=trusted != set(directions))
             read_seconds += time.perf_counter() - read_started
             looked_up = time.perf_counter()
-            n_keys = sum(len(block.dict_keys) for block in blocks)
-            stored = {d: hints.read(hints_fs, hints_root, d, path, row_group, n_keys) for d in hinted}
-            points = {d: [] for d in hinted}
-            searched = dict.fromkeys(directions, 0)
+            sizes = [block.n_dict for block in blocks]
+            n_keys = sum(sizes)
+            gathered = {}  # the probabilities of every key of the unit, per direction taking stored positions
+            for d in sorted(trusted):
+                gathered[d] = lookup.gather_found(tables[d].probs, stored[d].points, stored[d].found, sizes, MIN_PROB)
+                if gathered[d] is None:
+                    trusted.discard(d)  # not what positions of these blocks' keys can be: checked instead
+            for d in hinted:
+                if d not in trusted and stored[d] is not None and len(stored[d].points) != n_keys:
+                    stored[d] = None
             lookup_seconds += time.perf_counter() - looked_up
+            if trusted != set(directions) and blocks and blocks[0].dict_keys is None:
+                read_started = time.perf_counter()
+                blocks = read_blocks(fs, path, row_group, with_keys=True)
+                read_seconds += time.perf_counter() - read_started
+            written = {d: ([], [], [True]) for d in hinted if d not in trusted}  # points, found, exact
+            searched = dict.fromkeys(directions, 0)
             offset = 0
-            for block in blocks:
+            for block, n in zip(blocks, sizes):
                 looked_up = time.perf_counter()
-                n = len(block.dict_keys)
-                found, t_locals = {}, {}
+                found, t_locals, emitted = {}, {}, {}
                 for d in directions:
                     h = stored.get(d)
+                    if d in trusted:
+                        points, hit = h.points[offset:offset + n], h.found[offset:offset + n]
+                        found[d], emitted[d] = (points, hit), hit
+                        t_locals[d] = gathered[d][offset:offset + n]
+                        continue
                     found[d], t_locals[d], block_points, block_searched = tables[d].find_hinted(
-                        block.dict_keys, None if h is None else h[offset:offset + n])
+                        block.dict_keys, None if h is None else h.points[offset:offset + n])
+                    emitted[d] = emitted_keys(block.dict_keys, d)
                     searched[d] += block_searched
-                    if d in points:
-                        points[d].append(block_points)
+                    if d in written:
+                        written[d][0].append(block_points)
+                        written[d][1].append(found[d][1])
+                        written[d][2][0] &= bool(np.array_equal(found[d][1], emitted[d]))
                 offset += n
                 lookup_seconds += time.perf_counter() - looked_up
-                for result in block_results(model, directions, block, t_locals, dense):
+                for result in block_results(model, directions, block, t_locals, dense, emitted):
                     added = time.perf_counter()
                     task.add(block.dict_keys, found[DIRS[result[0]]], *result)
                     add_seconds += time.perf_counter() - added
             looked_up = time.perf_counter()
-            for d in hinted:
-                if searched[d]:  # a key was searched for, so the row group has blocks
-                    hints.write(hints_fs, hints_root, d, path, row_group, np.concatenate(points[d]))
+            for d, (points, hit, exact) in written.items():
+                # Stored again when a key was searched for or the table's keys are not the ones the
+                # hints name (so that the next iteration, with the same keys, can take them as they are).
+                if points and (searched[d] or stored[d] is None or stored[d].keys_id != tables[d].keys_id):
+                    hints.write(hints_fs, hints_root, d, path, row_group, lookup.StoredHints(
+                        np.concatenate(points), np.concatenate(hit), tables[d].keys_id, exact[0]))
             for d in directions:
                 searched_total[d] += searched[d]
                 keys_total[d] += n_keys
+                trusted_total[d] += n_keys if d in trusted else 0
             lookup_seconds += time.perf_counter() - looked_up
         payload_started = time.perf_counter()
         records = list(task.payloads(n_buckets))
         payload_seconds = time.perf_counter() - payload_started
         note_task_memory("broadcast")
-        # Scalars 3-10 in a record of their own: the task's wall time (reading, table lookups, kernels,
+        # Scalars 3-11 in a record of their own: the task's wall time (reading, table lookups, kernels,
         # folding, preparing its output) and the parts of it named in the module docstring, the same
         # under every direction, then the direction's lookup counts.
         values = [time.perf_counter() - started, lookup_seconds, add_seconds, load_seconds, read_seconds,
                   payload_seconds]
         timing = mstep.TaskCounts(tables)
         for direction in directions:
-            row = np.array(values + [searched_total[direction], keys_total[direction]], np.float64)
+            row = np.array(values + [searched_total[direction], keys_total[direction], trusted_total[direction]],
+                           np.float64)
             timing.add_rows(DIRS.index(direction), np.full(len(row), SCALAR, np.int32),
                             np.arange(3, 3 + len(row), dtype=np.int32), row)
         yield from records
@@ -158,16 +188,43 @@ def make_estep(model, directions: tuple[str, ...], tables_src, dense: dict[str, 
     return estep
 
 
+E_STEP_COLUMNS = ["block_id", "src_len", "src_ids", "tgt_len", "tgt_ids", "dict_keys", "grid"]
+
+
+def read_blocks(fs, path: str, row_group: int, *, with_keys: bool) -> list:
+    """The blocks of one row group of ``encoded/blocks``, as the E-step needs them (``with_keys=False``:
+    without their dictionary keys, for an E-step that knows where they are in the table)."""
+    from spark_align.engine import mstep
+
+    columns = E_STEP_COLUMNS if with_keys else [c for c in E_STEP_COLUMNS if c != "dict_keys"]
+    return [block for batch in mstep.read_unit(fs, path, row_group, columns=columns)
+            for _block_id, _rows, block in blocks_from_batch(batch)]
+
+
+def _exact_for(stored, table) -> bool:
+    """Whether stored hints can be taken as they are for ``table``: found in the same keys (a known
+    keys id) and marking exactly the entries the E-step counts (``engine.hints``)."""
+    return (stored is not None and stored.exact and stored.found is not None and bool(table.keys_id)
+            and stored.keys_id == table.keys_id)
+
+
+def emitted_keys(dict_keys: np.ndarray, direction: str) -> np.ndarray:
+    """Which dictionary entries are lexical counts of ``direction``: the entries it generates, not the
+    NULL target of the forward nor the NULL source of the reverse."""
+    if direction == "forward":
+        return (dict_keys & np.int64(0xFFFFFFFF)) != 0
+    return (dict_keys >> 32) != 0
+
+
 def block_results(model, directions: tuple[str, ...], block, t_locals: dict[str, np.ndarray],
-                  dense: dict[str, dict]) -> list[tuple]:
+                  dense: dict[str, dict], emitted: dict[str, np.ndarray] | None = None) -> list[tuple]:
     """E-step of one block given its local probabilities (one float64 per ``dict_keys`` entry per direction).
 
     Returns one ``(direction index, emitted, counts, (src, tgt, values))`` per direction: ``counts``
-    per dictionary entry, of which those where ``emitted`` is true are lexical counts (entries the
-    direction generates: not the NULL target of the forward, not the NULL source of the reverse),
-    and the last tuple the dense-statistics and scalar rows (see the module docstring).
+    per dictionary entry, of which those where ``emitted`` is true are lexical counts
+    (:func:`emitted_keys`, unless given per direction in ``emitted``), and the last tuple the
+    dense-statistics and scalar rows (see the module docstring).
     """
-    src, tgt = ragged.split_key(block.dict_keys)
     out = []
     for direction in directions:
         view = block.view(direction)
@@ -175,13 +232,13 @@ def block_results(model, directions: tuple[str, ...], block, t_locals: dict[str,
         counts, stats, loglik = model.e_step(view, t_locals[direction], dense[direction])
         kernel_seconds = time.perf_counter() - started
         n_links = float(((view.cond_len + 1) * view.gen_len).sum())
-        emitted = (tgt != 0) if direction == "forward" else (src != 0)
+        lexical = emitted_keys(block.dict_keys, direction) if emitted is None else emitted[direction]
         # Dense statistics are mostly zero per block (big alignment tables); zeros sum to nothing.
         stat_index = np.flatnonzero(stats).astype(np.int32)
         other = (np.concatenate([np.full(len(stat_index), DENSE, np.int32), np.full(3, SCALAR, np.int32)]),
                  np.concatenate([stat_index, np.arange(3, dtype=np.int32)]),
                  np.concatenate([stats[stat_index], [loglik, kernel_seconds, n_links]]))
-        out.append((DIRS.index(direction), emitted, counts, other))
+        out.append((DIRS.index(direction), lexical, counts, other))
     return out
 
 

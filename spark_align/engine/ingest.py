@@ -285,13 +285,17 @@ def block_array(column: pa.Array, k: int, name: str) -> np.ndarray:
     return column.values.slice(start, stop - start).to_numpy()
 
 
-def blocks_from_batch(batch: pa.RecordBatch) -> list[tuple[int, np.ndarray, ragged.Block]]:
-    """(block_id, rows, Block) for every block row of an Arrow batch, as zero-copy numpy views."""
+OPTIONAL_COLUMNS = ("rows", "dict_keys")  # block columns a reader may leave out
+
+
+def blocks_from_batch(batch: pa.RecordBatch) -> list[tuple[int, np.ndarray | None, ragged.Block]]:
+    """(block_id, rows, Block) for every block row of an Arrow batch, as zero-copy numpy views. A batch
+    read without ``rows`` or ``dict_keys`` (``engine.mstep.read_unit``'s ``columns``) gives None there."""
     cols = {name: batch.column(i) for i, name in enumerate(batch.schema.names)}
     out = []
     for k in range(batch.num_rows):
-        def arr(name: str) -> np.ndarray:
-            return block_array(cols[name], k, name)
+        def arr(name: str) -> np.ndarray | None:
+            return block_array(cols[name], k, name) if name in cols or name not in OPTIONAL_COLUMNS else None
 
         src_len, tgt_len = arr("src_len"), arr("tgt_len")
         block = ragged.Block(ragged.offsets_from_lengths(src_len), arr("src_ids"),

@@ -72,7 +72,8 @@ class TaskCounts:
 
     def add(self, dict_keys: np.ndarray, found, d: int, emitted: np.ndarray, values: np.ndarray, other) -> None:
         """One block's result for direction ``d`` (``engine.estep.block_results``); ``found`` = the
-        table's ``positions`` of ``dict_keys`` (None: constant table)."""
+        table's ``positions`` of ``dict_keys`` (None: constant table). ``dict_keys`` may be None when
+        every emitted entry was found (stored positions taken as they are, ``engine.hints``)."""
         if found is None:
             keys, values = dict_keys[emitted], values[emitted]
         else:
@@ -80,7 +81,9 @@ class TaskCounts:
             # dictionary keys are unique, so no position repeats within a block
             miss = counts.add_at_positions(found[0], found[1], emitted, values, acc[0], acc[1],
                                            hi_scale=HI_SCALE, lo_scale=LO_SCALE)
-            keys, values = dict_keys[miss], values[miss]
+            if len(miss) and dict_keys is None:
+                raise RuntimeError("counts of keys absent from the table, in a block read without its keys")
+            keys, values = (dict_keys[miss], values[miss]) if len(miss) else ((), ())
         if len(keys):
             src, tgt = keys >> 32, keys & np.int64(0xFFFFFFFF)
             fold_rows(self.buffer, np.full(len(keys), d, np.int8), src, tgt, *to_fixed(values))
@@ -279,7 +282,8 @@ def block_units(store) -> list[tuple[str, int]]:
     return units
 
 
-def read_unit(fs, path: str, row_group: int, batch_rows: int = 4):
-    """Record batches of a few block rows of one row group (memory: one row group at most)."""
+def read_unit(fs, path: str, row_group: int, batch_rows: int = 4, columns: list[str] | None = None):
+    """Record batches of a few block rows of one row group (memory: one row group at most); ``columns``:
+    only those (None: all)."""
     with fs.open(path, "rb") as fh:
-        yield from pq.ParquetFile(fh).iter_batches(batch_size=batch_rows, row_groups=[row_group])
+        yield from pq.ParquetFile(fh).iter_batches(batch_size=batch_rows, row_groups=[row_group], columns=columns)

@@ -164,7 +164,8 @@ def decode_units(decoder, blocks_url: str, hints_url: str | None = None, directi
             for path, row_group in zip(batch.column(0).to_pylist(), batch.column(1).to_pylist()):
                 stored = {} if hints_fs is None else {
                     d: hints.read(hints_fs, hints_root, d, path, row_group) for d in directions}
-                yield from decoder(read_unit(fs, path, row_group), {d: h for d, h in stored.items() if h is not None})
+                yield from decoder(read_unit(fs, path, row_group),
+                                   {d: h.points for d, h in stored.items() if h is not None})
 
     return decode
 

@@ -80,13 +80,21 @@ class Block:
     src_ids: np.ndarray
     tgt_offsets: np.ndarray
     tgt_ids: np.ndarray
-    dict_keys: np.ndarray
+    dict_keys: np.ndarray | None  # None: read without its keys (an E-step that knows their positions)
     grid_offsets: np.ndarray
     grid: np.ndarray
 
     @property
     def n_pairs(self) -> int:
         return len(self.src_offsets) - 1
+
+    @property
+    def n_dict(self) -> int:
+        """Dictionary entries; without the keys, one more than the grid's largest index (the grid
+        points at every entry: the dictionary is built from it)."""
+        if self.dict_keys is not None:
+            return len(self.dict_keys)
+        return int(self.grid.max()) + 1 if len(self.grid) else 0
 
     def view(self, direction: str) -> "View":
         """The block seen from ``direction`` ('forward' or 'reverse')."""

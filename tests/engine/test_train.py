@@ -126,31 +126,38 @@ def test_stored_lookup_hints_are_checked_and_never_change_results(spark, tmp_pat
     straight, resumed = str(tmp_path / "straight"), str(tmp_path / "resumed")
     train(spark, config(corpus, "ibm1:4", directions="both"), straight, log=lambda _: None)
 
-    def searched(run_dir, iteration):
+    def shares(run_dir, iteration):
         m = manifest(run_dir, "00-ibm1", iteration)["metrics"]
         assert all(m[d]["lookup_keys"] > 0 for d in ("forward", "reverse"))
-        return {d: m[d]["lookup_keys_searched"] / m[d]["lookup_keys"] for d in ("forward", "reverse")}
+        return {d: (m[d]["lookup_keys_searched"] / m[d]["lookup_keys"], m[d]["lookup_keys_trusted"] / m[d]["lookup_keys"])
+                for d in ("forward", "reverse")}
 
-    # Iteration 1 has the constant table; 2 searches every key and stores the hints; 3 and 4 use them.
-    assert searched(straight, 2) == {"forward": 1.0, "reverse": 1.0}
-    assert searched(straight, 3) == searched(straight, 4) == {"forward": 0.0, "reverse": 0.0}
+    # Iteration 1 has the constant table; 2 searches every key and stores the hints with the table's keys
+    # id; 3 and 4 have the same keys, so they take the stored positions as they are (no search, no check).
+    assert shares(straight, 2) == {"forward": (1.0, 0.0), "reverse": (1.0, 0.0)}
+    assert shares(straight, 3) == shares(straight, 4) == {"forward": (0.0, 1.0), "reverse": (0.0, 1.0)}
 
     train(spark, config(corpus, "ibm1:2", directions="both"), resumed, log=lambda _: None)
     hints_dir = os.path.join(resumed, "encoded", "hints")
     (fwd,), (rev,) = (sorted(os.listdir(os.path.join(hints_dir, d))) for d in ("forward", "reverse"))
-    with open(os.path.join(hints_dir, "forward", fwd), "wb") as fh:
-        fh.write(b"not hints")                                   # unreadable: searched afresh
-    with open(os.path.join(hints_dir, "reverse", rev), "rb+") as fh:
-        points = lookup.decode_hints(fh.read())
-        points[::2] += 1                                         # readable, but half of them wrong
+    with open(os.path.join(hints_dir, "forward", fwd), "rb+") as fh:
+        data = bytearray(fh.read())
+        data[len(data) // 2] ^= 1                                # damaged: the CRC-32 refuses it, searched afresh
         fh.seek(0)
-        fh.write(lookup.encode_hints(points))
+        fh.write(bytes(data))
+    with open(os.path.join(hints_dir, "reverse", rev), "rb+") as fh:
+        stored = lookup.decode_hints(fh.read())
+        points = stored.points.copy()
+        points[::2] += 1                                         # half of them wrong, and found in other keys:
+        fh.seek(0)                                               # checked, so the wrong half is found out
+        fh.write(lookup.encode_hints(lookup.StoredHints(points, stored.found, b"x" * 16, exact=True)))
         fh.truncate()
     train(spark, config(corpus, "ibm1:4", directions="both"), resumed, resume=True, log=lambda _: None)
     assert read_table(straight, "00-ibm1", 4).equals(read_table(resumed, "00-ibm1", 4))
-    third = searched(resumed, 3)
-    assert third["forward"] == 1.0 and third["reverse"] == pytest.approx(0.5, abs=0.01)
-    assert searched(resumed, 4) == {"forward": 0.0, "reverse": 0.0}  # stored again by iteration 3
+    third = shares(resumed, 3)
+    assert third["forward"] == (1.0, 0.0)
+    assert third["reverse"][0] == pytest.approx(0.5, abs=0.01) and third["reverse"][1] == 0.0
+    assert shares(resumed, 4) == {"forward": (0.0, 1.0), "reverse": (0.0, 1.0)}  # stored again by iteration 3
     a, b = read_output(straight), read_output(resumed)
     assert a.column("alignment").equals(b.column("alignment"))
 
@@ -174,6 +181,7 @@ def test_stored_lookup_hints_are_checked_and_never_change_results(spark, tmp_pat
     right = {d: hints.read(fs, os.path.join(straight, "encoded", "hints"), d, path, row_group)
              for d in ("forward", "reverse")}
     assert all(h is not None for h in right.values())
+    right = {d: h.points for d, h in right.items()}
     wrong = {d: h[::-1].copy() for d, h in right.items()}
     runs = [pa.Table.from_batches(list(decode(mstep.read_unit(fs, path, row_group), h)))
             for h in (None, right, wrong)]

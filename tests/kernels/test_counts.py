@@ -228,12 +228,52 @@ def test_hints_encoding_round_trips_and_refuses_damage():
     from spark_align.kernels import lookup
 
     points = np.array([0, 3, 257, 257, 900_000, 12, 13, 268, 2 ** 40], np.int64)  # steps 0..254 are one byte
-    data = lookup.encode_hints(points)
-    np.testing.assert_array_equal(lookup.decode_hints(data), points)
-    assert len(lookup.decode_hints(lookup.encode_hints(np.zeros(0, np.int64)))) == 0
-    for damaged in (data[:-1], data + b"x", b"junk" + data[4:], data[:10]):
+    found = np.array([1, 0, 1, 1, 0, 0, 1, 1, 1], bool)
+    stored = lookup.StoredHints(points, found, bytes(range(1, 17)), exact=True)
+    data = lookup.encode_hints(stored)
+    back = lookup.decode_hints(data)
+    np.testing.assert_array_equal(back.points, points)
+    np.testing.assert_array_equal(back.found, found)
+    assert back.keys_id == bytes(range(1, 17)) and back.exact
+    plain = lookup.decode_hints(lookup.encode_hints(lookup.StoredHints(points)))
+    assert plain.keys_id == b"" and not plain.exact and not plain.found.any()
+    assert len(lookup.decode_hints(lookup.encode_hints(lookup.StoredHints(np.zeros(0, np.int64)))).points) == 0
+    flipped = bytearray(data)
+    flipped[len(data) // 2] ^= 0x10                              # one bit inside: the CRC-32 finds it
+    for damaged in (data[:-1], data + b"x", b"junk" + data[4:], data[:10], bytes(flipped)):
         with pytest.raises(ValueError):
             lookup.decode_hints(damaged)
+    with pytest.raises(ValueError, match="do not fit"):
+        lookup.encode_hints(lookup.StoredHints(points, found[:-1]))
+
+
+def test_stored_positions_give_the_lookup_values_and_are_guarded():
+    """Positions taken as they are (a table with the same keys) give what a search gives; positions
+    that cannot be those of a sorted block dictionary are refused before any is read."""
+    from spark_align.kernels import lookup
+
+    rng = np.random.default_rng(12)
+    table = np.unique(rng.integers(0, 10 ** 6, 5000).astype(np.int64))
+    values = rng.random(len(table))
+    blocks = [np.unique(np.concatenate([rng.choice(table, n), rng.integers(-5, 10 ** 6 + 5, n)])).astype(np.int64)
+              for n in (700, 1, 300)]  # each block sorted; present and absent keys
+    keys = np.concatenate(blocks)
+    sizes = [len(b) for b in blocks]
+    _pos, hit, want, points, _ = lookup.find_hinted(table, values, keys, 1e-12, None)
+    assert 0 < hit.sum() < len(keys)
+    np.testing.assert_array_equal(lookup.gather_found(values, points, hit, sizes, 1e-12), want)
+    for broken in ("past the end", "going back", "sizes"):
+        bad, bad_sizes = points.copy(), list(sizes)
+        first, second = np.flatnonzero(hit[:sizes[0]])[:2]
+        if broken == "past the end":
+            bad[first] = len(table)
+        elif broken == "going back":
+            bad[second] = bad[first]
+        else:
+            bad_sizes[0] -= 1
+        assert lookup.gather_found(values, bad, hit, bad_sizes, 1e-12) is None, broken
+    # Across blocks the positions start again (each block's dictionary is sorted on its own).
+    assert points[sizes[0] + sizes[1]] < points[sizes[0] - 1]
 
 
 def test_ids_beyond_the_key_range_are_refused():
