@@ -219,21 +219,47 @@ def make_reducer(lex_url: str, n_parts: int, *, min_prob: float, prune_below: fl
             fs.makedirs(posixpath.join(root, "_temporary"), exist_ok=True)
         tmp = posixpath.join(root, "_temporary", f"{part_name(index)}.{uuid.uuid4().hex}")
         # No dictionary pages (probabilities never repeat enough) and LZ4 (raw) pages: 0.14 s against
-        # 0.24 s to write 4.7M entries with the defaults, and as fast to read. Written to memory first so
-        # that the file's CRC-32 (for the manifest) comes from the bytes written, not from reading them
-        # back on the driver.
-        sink = pa.BufferOutputStream()
-        pq.write_table(table, sink, use_dictionary=False, compression="lz4_raw")
-        data = sink.getvalue()
-        summary["crc32"] = f"{zlib.crc32(memoryview(data)):08x}"
+        # 0.24 s to write 4.7M entries with the defaults, and as fast to read. The file's CRC-32 (for the
+        # manifest) is taken from the bytes as they are written, not by reading them back on the driver;
+        # streamed, not first written to memory (3.9M entries: 0.07 s against 0.09-0.37 s, the high
+        # figure a fresh 34 MB buffer's page faults).
         with fs.open(tmp, "wb") as fh:
-            fh.write(memoryview(data))
+            sink = CrcWriter(fh)
+            pq.write_table(table, sink, use_dictionary=False, compression="lz4_raw")
+        summary["crc32"] = f"{sink.crc:08x}"
         fs.mv(tmp, posixpath.join(root, part_name(index)))
         summary["seconds"] = time.perf_counter() - started
         note_task_memory("reduce")
         yield summary
 
     return reduce
+
+
+class CrcWriter:
+    """A writable file that passes bytes on to ``fh`` and keeps their CRC-32 (``.crc``); closing it
+    leaves ``fh`` open for its owner to close."""
+
+    def __init__(self, fh) -> None:
+        self.fh, self.crc, self.closed, self._written = fh, 0, False, 0
+
+    def write(self, data) -> int:
+        n = memoryview(data).nbytes
+        self.crc = zlib.crc32(data, self.crc)
+        self._written += n
+        self.fh.write(data)
+        return n
+
+    def tell(self) -> int:
+        return self._written
+
+    def flush(self) -> None:
+        self.fh.flush()
+
+    def close(self) -> None:
+        self.closed = True
+
+    def writable(self) -> bool:
+        return True
 
 
 def combine(summaries: list[dict], directions: tuple[str, ...], *, prune_below: float | None) -> dict:
