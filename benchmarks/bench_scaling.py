@@ -16,6 +16,7 @@ core time:
 
 * ``iter_s``: wall seconds per EM iteration (median), from the checkpoint manifests;
 * ``searched``: the share of dictionary keys the lookup had to search for (no valid stored hint);
+  ``trusted``: the share it took at their stored positions without reading any key (``engine.hints``);
 * ``mlinks_core``: E-step kernel throughput, million links per second per core, = links /
   kernel seconds (a link is one (generated token, cond position incl. NULL) cell; both directions);
 * ``outside``: the share of an iteration's core time spent outside the model kernels,
@@ -123,7 +124,7 @@ def _child_train(args) -> None:
                      **{f"{part}_seconds": m["metrics"][dirs[0]].get(f"{part}_seconds", 0.0) for part in PARTS},
                      "reduce_task_seconds": m["metrics"][dirs[0]].get("reduce_task_seconds", 0.0),
                      **{key: sum(m["metrics"][d].get(key, 0.0) for d in dirs)
-                        for key in ("lookup_keys_searched", "lookup_keys")},
+                        for key in ("lookup_keys_searched", "lookup_keys", "lookup_keys_trusted")},
                      "links": sum(m["metrics"][d]["links"] for d in dirs),
                      "shipping": m["metrics"][dirs[0]].get("shipping"),
                      "table_entries": m["metrics"][dirs[0]].get("table_entries"),
@@ -172,6 +173,7 @@ def run_config(work: Path, pairs: int, *, vocab: int, shipping: str, block_size:
         parts = {part: sum(r[f"{part}_seconds"] for r in later) / len(later) for part in PARTS}
         searched = sum(r.get("lookup_keys_searched", 0.0) for r in later)
         looked_up = sum(r.get("lookup_keys", 0.0) for r in later)
+        trusted = sum(r.get("lookup_keys_trusted", 0.0) for r in later)
         core_s = sum(r["seconds"] for r in later) / len(later) * cores
         compute = kernel + parts["lookup"] + parts["accumulate"]
         result.update(iter_s=secs, kernel_s=kernel, links=links, mlinks_core=links / kernel / 1e6,
@@ -179,6 +181,7 @@ def run_config(work: Path, pairs: int, *, vocab: int, shipping: str, block_size:
                       shipping=later[-1]["shipping"], table_entries=later[-1]["table_entries"],
                       lookup_vs_kernel=parts["lookup"] / kernel,
                       searched_share=searched / looked_up if looked_up else float("nan"),
+                      trusted_share=trusted / looked_up if looked_up else float("nan"),
                       # where the core time went (shares of cores x iteration seconds)
                       **{f"{part}_share": v / core_s for part, v in parts.items()},
                       estep_other=(task - kernel - sum(parts.values())) / core_s if task else float("nan"),
@@ -195,7 +198,8 @@ def fmt(r: dict) -> str:
             f"table {r.get('table_entries') or 0:>9d}  iter {r.get('iter_s', float('nan')):7.2f} s  "
             f"kernel {r.get('mlinks_core', float('nan')):6.1f} M links/s/core\n"
             f"    outside the kernels {pct('outside')}, outside kernels + lookup + accumulation {pct('outside_compute')}"
-            f"  (lookup {pct('lookup_share')} with {pct('searched_share')} of keys searched, accumulation {pct('accumulate_share')}, table load"
+            f"  (lookup {pct('lookup_share')} with {pct('searched_share')} of keys searched and {pct('trusted_share')} at"
+            f" stored positions, accumulation {pct('accumulate_share')}, table load"
             f" {pct('table_load_share')}, block reads {pct('block_read_share')}, output records {pct('payload_share')},"
             f" other E-step {pct('estep_other')}, reducers {pct('reduce_share')}, rest {pct('rest_share')})\n"
             f"    task RSS {r['task_rss_mb']:6.0f} MB  "
