@@ -3,8 +3,8 @@
 Per iteration:
 
 1. Each E-step task (either shipping path) folds the rows of all its blocks
-   into one sum per distinct (dir, src, tgt) (:class:`~spark_align.kernels.counts.CountBuffer`,
-   integer fixed point) and emits one record per reducer bucket:
+   into one sum per distinct (dir, src, tgt) (table-aligned accumulators, or a
+   :class:`~spark_align.kernels.counts.HashCounts`; integer fixed point) and emits one record per reducer bucket:
    ``(bucket, payload bytes)`` (``kernels.counts.encode_rows``). A task's output
    is then at most the number of distinct pairs it saw, not one row per block
    entry.
@@ -41,14 +41,14 @@ from spark_align.store import BUCKET_PROTOCOLS
 TABLE_SCHEMA = pa.schema([("dir", pa.int8()), ("src", pa.int32()), ("tgt", pa.int32()), ("prob", pa.float64())])
 
 
-def fold_rows(buffer: counts.CountBuffer, dirs, src, tgt, hi, lo) -> None:
+def fold_rows(buffer: counts.CountBuffer | counts.HashCounts, dirs, src, tgt, hi, lo) -> None:
     """Add E-step rows (``engine.estep`` layout, already fixed point) to a task's buffer."""
     if len(src) and (int(src.max()) >= counts.MAX_ID or int(tgt.max()) >= counts.MAX_ID):
         raise ValueError(f"word ids must stay below {counts.MAX_ID}")
     buffer.add(counts.row_keys(dirs, src, tgt), np.asarray(hi, np.int64), np.asarray(lo, np.int64))
 
 
-def payloads(buffer: counts.CountBuffer, n_buckets: int):
+def payloads(buffer: counts.CountBuffer | counts.HashCounts, n_buckets: int):
     """(bucket, bytes) records of a task's folded rows: one per non-empty bucket."""
     for bucket, part in _split_arrays(*buffer.result(), n_buckets):
         yield bucket, counts.encode_rows(*part)
@@ -61,13 +61,13 @@ class TaskCounts:
     the table (positions come from the lookup the E-step does anyway), so folding costs one
     scattered add per dictionary entry and no sort; everything else (the constant first-iteration
     table, keys absent from the table, dense statistics, scalars) goes through a
-    :class:`~spark_align.kernels.counts.CountBuffer`. Memory: 17 bytes per table entry per direction
+    :class:`~spark_align.kernels.counts.HashCounts`. Memory: 17 bytes per table entry per direction
     that has a table, on top of the table itself.
     """
 
     def __init__(self, tables: dict) -> None:
         self.tables = tables
-        self.buffer = counts.CountBuffer()
+        self.buffer = counts.HashCounts()
         self.acc: dict[int, tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
 
     def add(self, dict_keys: np.ndarray, found, d: int, emitted: np.ndarray, values: np.ndarray, other) -> None:
@@ -85,8 +85,7 @@ class TaskCounts:
                 raise RuntimeError("counts of keys absent from the table, in a block read without its keys")
             keys, values = (dict_keys[miss], values[miss]) if len(miss) else ((), ())
         if len(keys):
-            src, tgt = keys >> 32, keys & np.int64(0xFFFFFFFF)
-            fold_rows(self.buffer, np.full(len(keys), d, np.int8), src, tgt, *to_fixed(values))
+            self.buffer.add(*counts.pair_rows(d, keys, values, hi_scale=HI_SCALE, lo_scale=LO_SCALE))
         self.add_rows(d, *other)
 
     def add_rows(self, d: int, src: np.ndarray, tgt: np.ndarray, values: np.ndarray) -> None:
@@ -148,7 +147,7 @@ def make_payload_folder(n_buckets: int):
     """``mapInArrow`` function: ``engine.estep.STATS_SCHEMA`` rows -> (bucket, payload), folded per task."""
 
     def fold(batches):
-        buffer = counts.CountBuffer()
+        buffer = counts.HashCounts()  # rows come as each block's sorted runs
         for batch in batches:
             cols = [batch.column(i).to_numpy() for i in range(5)]
             fold_rows(buffer, *cols)

@@ -175,6 +175,126 @@ class CountBuffer:
         return self._parts[0]
 
 
+def pair_rows(d: int, pair_keys: np.ndarray, values: np.ndarray, *, hi_scale: float, lo_scale: float):
+    """Rows (:func:`row_keys`, hi, lo) of direction ``d`` for block dictionary keys ``src << 32 | tgt`` and
+    their float64 values, in one compiled pass: the same integers as ``row_keys`` and splitting with
+    ``hi = floor(v * hi_scale)``, ``lo = rint((v * hi_scale - hi) * lo_scale)``. ValueError if an id is
+    not below :data:`MAX_ID`."""
+    pair_keys = np.ascontiguousarray(pair_keys, np.int64)
+    out = tuple(np.empty(len(pair_keys), np.int64) for _ in range(3))
+    if not _pair_rows(int(d), pair_keys, np.ascontiguousarray(values, np.float64), float(hi_scale),
+                      float(lo_scale), *out):
+        raise ValueError(f"word ids must stay below {MAX_ID}")
+    return out
+
+
+@njit(cache=True, nogil=True)
+def _pair_rows(d, pair_keys, values, hi_scale, lo_scale, keys, hi, lo):  # pragma: no cover
+    top = np.int64(d) << np.int64(62)
+    ok = True
+    for i in range(len(pair_keys)):
+        k = pair_keys[i]
+        ok &= ((k >> 32) < MAX_ID) & ((k & 0xFFFFFFFF) < MAX_ID) & (k >= 0)
+        keys[i] = top | (k + (np.int64(2) << np.int64(32)))
+        scaled = values[i] * hi_scale
+        h = np.floor(scaled)
+        hi[i] = np.int64(h)
+        lo[i] = np.int64(np.rint((scaled - h) * lo_scale))
+    return ok
+
+
+class HashCounts:
+    """Sums (key, hi, lo) rows per distinct key as they arrive, in an open-addressing hash table.
+
+    The same sums as :class:`CountBuffer` (integers: the order rows arrive in does not matter), for
+    rows that come as many short sorted runs, as an E-step task's do when the table cannot take them
+    (the constant first iteration: every key of every block's dictionary). A slot is (key + 1, hi,
+    lo) in one row of an (n, 3) array (0: empty, so a new table is plain zeroed memory), so an insert
+    touches one cache line; the table is at most 70% full. Memory: 34 to 69 bytes per distinct key,
+    nothing per row. One E-step task of that iteration at 1M pairs (66M rows in 242 runs, 8.4M
+    distinct keys): 2.7 s to fold, against 8.8 s for sorting and merging the runs
+    (:class:`CountBuffer`). Keys must be non-negative (:func:`row_keys` are).
+    """
+
+    LOAD = 0.7
+
+    def __init__(self, capacity: int = 1 << 16) -> None:
+        self._slots = np.zeros((max(16, 1 << int(capacity - 1).bit_length()), 3), np.int64)
+        self._used = 0
+
+    def add(self, keys: np.ndarray, hi: np.ndarray, lo: np.ndarray) -> None:
+        keys, hi, lo = (np.ascontiguousarray(a, np.int64) for a in (keys, hi, lo))
+        if len(keys) and int(keys.min()) < 0:
+            raise ValueError("hashed count keys must be non-negative")
+        start = 0
+        while True:
+            # an insert stops when the table is full enough; it doubles and the insert goes on
+            start, self._used = _hash_insert(self._slots, keys, hi, lo, start, self._used,
+                                             int(len(self._slots) * self.LOAD))
+            if start == len(keys):
+                return
+            old = self._live()
+            self._slots = np.zeros((2 * len(self._slots), 3), np.int64)
+            _, self._used = _hash_insert(self._slots, *old, 0, 0, len(self._slots))
+
+    def _live(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        out = tuple(np.empty(self._used, np.int64) for _ in range(3))
+        _hash_live(self._slots, *out)
+        return out
+
+    def result(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """(unique keys ascending, hi sums, lo sums)."""
+        keys, hi, lo = self._live()
+        order = np.argsort(keys)  # distinct keys: any sort gives the one order
+        return keys[order], hi[order], lo[order]
+
+
+@njit(cache=True, nogil=True)
+def _hash_insert(slots, keys, hi, lo, start, used, limit):  # pragma: no cover
+    # Fibonacci hashing (the top bits of key x 2^64/phi), linear probing; the slot 16 rows ahead is
+    # prefetched. Stops before the table would hold more than ``limit`` keys: (next row, keys held).
+    capacity = len(slots)
+    mask = capacity - 1
+    bits = 0
+    while (1 << bits) < capacity:
+        bits += 1
+    shift = np.uint64(64 - bits)
+    mult = np.uint64(0x9E3779B97F4A7C15)
+    n = len(keys)
+    for i in range(start, n):
+        if i + 16 < n:
+            prefetch(slots, np.int64((np.uint64(keys[i + 16] + 1) * mult) >> shift))
+        k = keys[i] + 1
+        h = np.int64((np.uint64(k) * mult) >> shift)
+        while True:
+            t = slots[h, 0]
+            if t == k:
+                slots[h, 1] += hi[i]
+                slots[h, 2] += lo[i]
+                break
+            if t == 0:
+                if used == limit:
+                    return i, used
+                slots[h, 0] = k
+                slots[h, 1] = hi[i]
+                slots[h, 2] = lo[i]
+                used += 1
+                break
+            h = (h + 1) & mask
+    return n, used
+
+
+@njit(cache=True, nogil=True)
+def _hash_live(slots, keys, hi, lo):  # pragma: no cover
+    m = 0
+    for h in range(len(slots)):
+        if slots[h, 0] != 0:
+            keys[m] = slots[h, 0] - 1
+            hi[m] = slots[h, 1]
+            lo[m] = slots[h, 2]
+            m += 1
+
+
 def buckets_of(keys: np.ndarray, n_buckets: int) -> np.ndarray:
     """Reducer bucket of each row: every lexical row with the same (dir, conditioning word) lands in
     the same bucket, and so does every row with the same key (dense entries, scalars).

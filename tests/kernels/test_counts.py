@@ -51,6 +51,41 @@ def test_buffer_folding_equals_one_exact_integer_sum_whatever_the_order():
         assert np.all(np.diff(keys) > 0)
 
 
+def test_hash_counts_give_the_sums_of_the_sorting_buffer_in_any_order():
+    rng = np.random.default_rng(21)
+    dirs, src, tgt, values = _rows(rng, 30000)
+    hi, lo = estep.to_fixed(values)
+    plain = counts.CountBuffer()
+    mstep.fold_rows(plain, dirs, src, tgt, hi, lo)
+    want = plain.result()
+    for perm_seed, capacity in ((2, 16), (3, 1 << 20)):  # 16 slots: the table doubles many times
+        perm = np.random.default_rng(perm_seed).permutation(len(dirs))
+        hashed = counts.HashCounts(capacity)
+        for chunk in np.array_split(perm, 53):
+            mstep.fold_rows(hashed, dirs[chunk], src[chunk], tgt[chunk], hi[chunk], lo[chunk])
+        for a, b in zip(hashed.result(), want):
+            np.testing.assert_array_equal(a, b)
+    assert all(len(a) == 0 for a in counts.HashCounts().result())
+    with pytest.raises(ValueError, match="non-negative"):
+        counts.HashCounts().add(np.array([-3], np.int64), np.zeros(1, np.int64), np.zeros(1, np.int64))
+
+
+def test_pair_rows_are_row_keys_and_fixed_point_in_one_pass():
+    from spark_align.kernels import ragged
+
+    rng = np.random.default_rng(22)
+    src, tgt = rng.integers(0, 70000, 3000), rng.integers(0, 70000, 3000)
+    values = rng.random(3000) * np.exp(rng.uniform(-30, 8, 3000))
+    for d in (0, 1):
+        got = counts.pair_rows(d, ragged.make_key(src, tgt), values, hi_scale=estep.HI_SCALE, lo_scale=estep.LO_SCALE)
+        want = (counts.row_keys(np.full(len(src), d, np.int8), src, tgt), *estep.to_fixed(values))
+        for a, b in zip(got, want):
+            np.testing.assert_array_equal(a, b)
+    with pytest.raises(ValueError, match="word ids must stay below"):
+        counts.pair_rows(0, ragged.make_key(np.array([counts.MAX_ID]), np.array([1])), np.ones(1),
+                         hi_scale=estep.HI_SCALE, lo_scale=estep.LO_SCALE)
+
+
 def test_payloads_partition_rows_by_conditioning_word_and_round_trip():
     rng = np.random.default_rng(4)
     dirs, src, tgt, values = _rows(rng, 8000)
