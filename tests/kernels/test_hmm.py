@@ -229,3 +229,24 @@ def test_decode_follows_a_monotone_chain():
 def test_bad_options(options, message):
     with pytest.raises(ValueError, match=message):
         HMM(**options)
+
+
+@pytest.mark.parametrize("model_name", ["ibm1", "ibm2", "ibm2-diagonal", "hmm"])
+def test_viterbi_links_pick_what_the_per_link_selection_picks(model_name):
+    """The per-token shortcut of the output pass equals selecting among every link (every model, both
+    directions, after a few EM iterations so that positions are not uniform)."""
+    from spark_align.models import base
+    from spark_align.models.ibm1 import IBM1
+    from spark_align.models.ibm2 import IBM2, IBM2Diag
+
+    model = {"ibm1": IBM1, "ibm2": IBM2, "ibm2-diagonal": IBM2Diag, "hmm": HMM}[model_name]()
+    block = make_block(random_corpus(np.random.default_rng(31), 40, max_len=9, min_len=0))
+    for direction in ("forward", "reverse"):
+        run = run_em(model, block, 3, direction=direction)
+        view = block.view(direction)
+        gc, post, best, _ = model.decode_pass(view, run.t, run.dense, method="viterbi")
+        assert (best > 0).any()
+        want = base.select_links(gc.token, gc.cond_pos, post, best, method="viterbi", threshold=0.5)
+        got = base.viterbi_links(view, post, best)
+        for a, b in zip(got, want):
+            np.testing.assert_array_equal(a, b)
