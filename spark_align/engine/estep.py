@@ -128,7 +128,9 @@ def make_estep(model, directions: tuple[str, ...], tables_src, dense: dict[str, 
                 read_started = time.perf_counter()
                 blocks = read_blocks(fs, path, row_group, with_keys=True)
                 read_seconds += time.perf_counter() - read_started
-            written = {d: ([], [], [True]) for d in hinted if d not in trusted}  # points, found, exact
+            new_points = {d: [] for d in hinted if d not in trusted}  # hints to store again, if need be
+            new_found = {d: [] for d in new_points}
+            exact = dict.fromkeys(new_points, True)
             searched = dict.fromkeys(directions, 0)
             offset = 0
             for block, n in zip(blocks, sizes):
@@ -145,10 +147,10 @@ def make_estep(model, directions: tuple[str, ...], tables_src, dense: dict[str, 
                         block.dict_keys, None if h is None else h.points[offset:offset + n])
                     emitted[d] = emitted_keys(block.dict_keys, d)
                     searched[d] += block_searched
-                    if d in written:
-                        written[d][0].append(block_points)
-                        written[d][1].append(found[d][1])
-                        written[d][2][0] &= bool(np.array_equal(found[d][1], emitted[d]))
+                    if d in new_points:
+                        new_points[d].append(block_points)
+                        new_found[d].append(found[d][1])
+                        exact[d] = exact[d] and bool(np.array_equal(found[d][1], emitted[d]))
                 offset += n
                 lookup_seconds += time.perf_counter() - looked_up
                 for result in block_results(model, directions, block, t_locals, dense, emitted):
@@ -156,12 +158,12 @@ def make_estep(model, directions: tuple[str, ...], tables_src, dense: dict[str, 
                     task.add(block.dict_keys, found[DIRS[result[0]]], *result)
                     add_seconds += time.perf_counter() - added
             looked_up = time.perf_counter()
-            for d, (points, hit, exact) in written.items():
+            for d, points in new_points.items():
                 # Stored again when a key was searched for or the table's keys are not the ones the
                 # hints name (so that the next iteration, with the same keys, can take them as they are).
                 if points and (searched[d] or stored[d] is None or stored[d].keys_id != tables[d].keys_id):
                     hints.write(hints_fs, hints_root, d, path, row_group, lookup.StoredHints(
-                        np.concatenate(points), np.concatenate(hit), tables[d].keys_id, exact[0]))
+                        np.concatenate(points), np.concatenate(new_found[d]), tables[d].keys_id, exact[d]))
             for d in directions:
                 searched_total[d] += searched[d]
                 keys_total[d] += n_keys
