@@ -39,7 +39,11 @@ def directional_links(block: ragged.Block, direction: str, token, cond_pos, post
     key = _link_key(pair, src_i, tgt_j)
     if len(key) < 2 or bool(np.all(key[1:] > key[:-1])):  # the reverse direction lists links in order
         return pair, src_i, tgt_j, post
-    order = np.argsort(key)  # keys are unique: one int64 sort instead of a three-key lexsort
+    # The forward lists them by target within each pair: a stable sort by source within each pair puts
+    # them in order; anything else falls back to sorting the (unique) keys.
+    order = ragged.order_within_rows(pair, src_i)
+    if not bool(np.all(np.diff(key[order]) > 0)):
+        order = np.argsort(key)
     return pair[order], src_i[order], tgt_j[order], post[order]
 
 

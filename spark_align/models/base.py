@@ -20,7 +20,7 @@ from typing import ClassVar, Protocol
 
 import numpy as np
 
-from spark_align.kernels.ragged import GenCells, View
+from spark_align.kernels.ragged import GenCells, View, links_at_least
 
 Dense = dict[str, np.ndarray]
 
@@ -73,7 +73,7 @@ def select_links(token: np.ndarray, cond_pos: np.ndarray, post: np.ndarray, best
     if method == "viterbi":
         keep = (cond_pos == best_pos[token]) & (cond_pos > 0)
     elif method == "posterior":
-        keep = (post >= threshold) & (cond_pos > 0)
+        return links_at_least(token, cond_pos, post, threshold)
     else:
         raise ValueError(f"decoding method must be 'viterbi' or 'posterior', not {method!r}")
     return token[keep], cond_pos[keep], post[keep]

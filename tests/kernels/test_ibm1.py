@@ -105,6 +105,28 @@ def test_reverse_grid_is_each_pairs_grid_transposed():
         np.testing.assert_array_equal(got[a:b], want)
 
 
+def test_order_within_rows_is_a_stable_sort_by_column_within_each_row():
+    from spark_align.kernels import ragged
+
+    rng = np.random.default_rng(12)
+    row = np.sort(rng.integers(0, 30, 2000))
+    col = rng.integers(0, 9, 2000)  # repeats within a row: stability shows
+    np.testing.assert_array_equal(ragged.order_within_rows(row, col), np.lexsort((col, row)))
+    assert len(ragged.order_within_rows(np.zeros(0, np.int64), np.zeros(0, np.int64))) == 0
+
+
+def test_links_at_least_equal_numpy_masks():
+    from spark_align.kernels import ragged
+
+    rng = np.random.default_rng(13)
+    token, cond_pos, post = np.repeat(np.arange(500), 6), np.tile(np.arange(6), 500), rng.random(3000)
+    post[::7] = 0.25                                             # exactly at the threshold: kept
+    keep = (post >= 0.25) & (cond_pos > 0)
+    for a, b in zip(ragged.links_at_least(token, cond_pos, post, 0.25), (token[keep], cond_pos[keep], post[keep])):
+        np.testing.assert_array_equal(a, b)
+        assert a.dtype == b.dtype
+
+
 def test_gen_cells_enumerates_links_token_major():
     """Every (generated token, cond position) link, tokens in pair order, positions 0..l, and the grid
     cell of each, checked against a plain loop over the pairs."""
