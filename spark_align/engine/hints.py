@@ -38,16 +38,14 @@ def hints_path(root: str, direction: str, blocks_file: str, row_group: int) -> s
     return posixpath.join(root, direction, f"{posixpath.basename(blocks_file)}.rg{row_group:05d}")
 
 
-def read(fs, root: str, direction: str, blocks_file: str, row_group: int,
-         n_keys: int | None = None) -> StoredHints | None:
-    """The stored hints of a row group's ``n_keys`` dictionary keys, or None if there are none usable
-    (absent, unreadable, damaged, or not ``n_keys`` long; None: any length)."""
+def read(fs, root: str, direction: str, blocks_file: str, row_group: int) -> StoredHints | None:
+    """The stored hints of a row group's dictionary keys, or None if there are none usable (absent,
+    unreadable or damaged). Callers check the length against the blocks they read."""
     try:
         with fs.open(hints_path(root, direction, blocks_file, row_group), "rb") as fh:
-            stored = decode_hints(fh.read())
+            return decode_hints(fh.read())
     except (OSError, ValueError):
         return None
-    return stored if n_keys is None or len(stored.points) == n_keys else None
 
 
 def write(fs, root: str, direction: str, blocks_file: str, row_group: int, stored: StoredHints) -> None:
