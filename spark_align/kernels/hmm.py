@@ -164,7 +164,7 @@ def _forward_backward_compiled(cond_len, gen_len, cell_offsets, cells, t, jump, 
         max_l = max(max_l, cond_len[p])
         max_m = max(max_m, gen_len[p])
         max_cells = max(max_cells, cond_len[p] * gen_len[p])
-    trans = np.empty((max_l, max_l))
+    trans, trans_t = np.empty((max_l, max_l)), np.empty((max_l, max_l))
     e_real, ar, an, beta = (np.empty(max_cells), np.empty(max_cells), np.empty(max_cells),
                             np.empty(max_cells))
     e_null, scale = np.empty(max_m), np.empty(max_m)
@@ -198,6 +198,7 @@ def _forward_backward_compiled(cond_len, gen_len, cell_offsets, cells, t, jump, 
                     z += trans[a, b]
                 for b in range(l):
                     trans[a, b] = (1.0 - p0) * (trans[a, b] / z)
+                    trans_t[b, a] = trans[a, b]
             trans_l = l
         for j in range(m):
             e_null[j] = t[cells[base + j + 1]]
@@ -247,13 +248,16 @@ def _forward_backward_compiled(cond_len, gen_len, cell_offsets, cells, t, jump, 
             o = j * l
             inv = 1.0 / scale[j]
             pe = p0 * e_null[j]
-            for i in range(l):
-                g[i] = e_real[o + i] * beta[o + i]
+            # beta_{j-1}(a) = sum_i T(a, i) e_j(i) beta_j(i): summed over i in the outer loop (the same
+            # additions in the same order) so that the inner loop over a vectorises
             for a in range(l):
-                acc = 0.0
-                for i in range(l):
-                    acc += trans[a, i] * g[i]
-                beta[o - l + a] = (acc + pe * beta[o + a]) * inv
+                s[a] = 0.0
+            for i in range(l):
+                gi = e_real[o + i] * beta[o + i]
+                for a in range(l):
+                    s[a] += trans_t[i, a] * gi
+            for a in range(l):
+                beta[o - l + a] = (s[a] + pe * beta[o + a]) * inv
         # state posteriors: lexical counts and link posteriors
         for j in range(m):
             o = j * l
