@@ -96,13 +96,19 @@ def main() -> None:
 
         hints = lookup.find_hinted(table, probs, keys, 1e-12, None)[3]
         lookup.find_hinted(table, probs, keys[:10], 1e-12, hints[:10])
+        index = lookup.key_index(table)
+        lookup.find_hinted(table, probs, keys[:10], 1e-12, None, index)
         for name, fn in (("searchsorted", searchsorted),
                          ("galloping", lambda: lookup.find(table, probs, keys, 1e-12)),
+                         ("hash index", lambda: lookup.find_hinted(table, probs, keys, 1e-12, None, index)),
                          ("hinted", lambda: lookup.find_hinted(table, probs, keys, 1e-12, hints)),
-                         ("hints decoded", lambda: lookup.decode_hints(lookup.encode_hints(hints)))):
+                         ("hints decoded", lambda: lookup.decode_hints(lookup.encode_hints(lookup.StoredHints(hints))))):
             secs = best_time(fn, args.repeat)
             print(f"lookup {name:12s}: {secs:7.3f} s  {secs / len(keys) * 1e9:6.1f} ns/key  "
                   f"{len(keys)} keys in a {len(table)}-entry table  = {secs / ibm1_secs:.2f} x the ibm1 e_step")
+        secs = best_time(lambda: lookup.key_index(table), args.repeat)
+        print(f"lookup index build  : {secs:7.3f} s  {secs / len(table) * 1e9:6.1f} ns/table entry (once per table"
+              f" and Python worker, when keys are searched for)")
         # Adding the block's counts into the table-aligned accumulators (engine.mstep.TaskCounts).
         from spark_align.kernels import counts
 

@@ -143,8 +143,11 @@ def make_estep(model, directions: tuple[str, ...], tables_src, dense: dict[str, 
                         found[d], emitted[d] = (points, hit), hit
                         t_locals[d] = gathered[d][offset:offset + n]
                         continue
+                    # Hints found in other keys (a pruned table, or the first table) are mostly stale:
+                    # the table's hash index finds the keys faster than checking them first.
+                    usable = h is not None and h.keys_id == tables[d].keys_id
                     found[d], t_locals[d], block_points, block_searched = tables[d].find_hinted(
-                        block.dict_keys, None if h is None else h.points[offset:offset + n])
+                        block.dict_keys, h.points[offset:offset + n] if usable else None)
                     emitted[d] = emitted_keys(block.dict_keys, d)
                     searched[d] += block_searched
                     if d in new_points:

@@ -107,7 +107,9 @@ def make_decoder(model, directions: tuple[str, ...], tables_bc, dense: dict, *, 
                  threshold: float, symmetrization: str):
     def decode(batches, hints: dict | None = None):
         """Decoder rows for blocks; ``hints``: direction -> stored lookup hints of these blocks'
-        dictionaries, concatenated in block order (``engine.hints``; checked, so never trusted)."""
+        dictionaries, concatenated in block order (``engine.hints``, a ``lookup.StoredHints``; checked,
+        so never trusted). Hints found in other keys than the table's are not used: the table's hash
+        index finds the keys faster than checking mostly stale hints first."""
         tables = tables_bc.value
         offset = 0
         for batch in batches:
@@ -118,7 +120,8 @@ def make_decoder(model, directions: tuple[str, ...], tables_bc, dense: dict, *, 
                 for direction in directions:
                     view = block.view(direction)
                     h = (hints or {}).get(direction)
-                    h = h[offset:offset + n_keys] if h is not None and offset + n_keys <= len(h) else None
+                    h = (h.points[offset:offset + n_keys] if h is not None and offset + n_keys <= len(h.points)
+                         and h.keys_id == tables[direction].keys_id else None)
                     t_local = tables[direction].find_hinted(block.dict_keys, h)[1]
                     chosen, all_links, loglik = decode_all(
                         model, view, t_local, dense[direction], method=method, threshold=threshold,
@@ -169,7 +172,7 @@ def decode_units(decoder, blocks_url: str, hints_url: str | None = None, directi
                 stored = {} if hints_fs is None else {
                     d: hints.read(hints_fs, hints_root, d, path, row_group) for d in directions}
                 yield from decoder(read_unit(fs, path, row_group),
-                                   {d: h.points for d, h in stored.items() if h is not None})
+                                   {d: h for d, h in stored.items() if h is not None})
 
     return decode
 

@@ -29,7 +29,7 @@ table through :class:`TableSource` too.
 from __future__ import annotations
 
 import posixpath
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -47,6 +47,8 @@ class DirectionTable:
     probs: np.ndarray | None
     constant: float | None = None
     keys_id: bytes = b""  # 16 bytes naming ``keys`` (TableLayout.keys_id); empty: unknown
+    # the hash index of ``keys`` (kernels.lookup.key_index), built by the first search that needs it
+    _index: dict = field(default_factory=dict, repr=False, compare=False)
 
     def local(self, dict_keys: np.ndarray) -> np.ndarray:
         """Probabilities of a block dictionary's entries (MIN_PROB where a key is unknown)."""
@@ -67,12 +69,22 @@ class DirectionTable:
     def find_hinted(self, dict_keys: np.ndarray, hints: np.ndarray | None):
         """:meth:`find` starting from stored hints (``engine.hints``; None: none); also returns the
         insertion points (the next hints) and how many keys had to be searched for. A constant table
-        has no positions: (None, probabilities, None, 0)."""
+        has no positions: (None, probabilities, None, 0).
+
+        Without hints, keys are found through the table's hash index (built on first use, kept with
+        the table: 4-8 bytes per entry) when they are at least 1/64 of the table, as a block's
+        dictionary is; fewer keys gallop without it."""
         if self.constant is not None:
             return None, np.full(len(dict_keys), self.constant), None, 0
-        from spark_align.kernels.lookup import find_hinted
+        from spark_align.kernels import lookup
 
-        pos, hit, probs, points, searched = find_hinted(self.keys, self.probs, dict_keys, MIN_PROB, hints)
+        index = None
+        if hints is None and (self._index or 64 * len(dict_keys) >= len(self.keys)):
+            if not self._index:
+                self._index["slots"] = lookup.key_index(self.keys)
+            index = self._index["slots"]
+        pos, hit, probs, points, searched = lookup.find_hinted(self.keys, self.probs, dict_keys, MIN_PROB, hints,
+                                                               index)
         return (pos, hit), probs, points, searched
 
 

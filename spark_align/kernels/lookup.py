@@ -6,6 +6,14 @@ the previous key's position (steps 1, 2, 4, ... then a binary search inside the
 last step) touches a few neighbouring cache lines per key, where a binary
 search over the whole table (``np.searchsorted``) starts from the middle every
 time: 3.8x faster measured on a 3.4M-entry table and a 280k-key dictionary.
+
+When most keys have no usable stored position (the first search in a new
+table), a hash index of the table's keys (:func:`key_index`, built once per
+table) finds them instead: its slot, and then the key's table line, can be
+prefetched keys ahead, where each galloping step waits for the one before.
+Measured on a 7.7M-entry table and 6.7M keys of 24 blocks, in one process:
+16-22 ns per key against 37 ns galloping. Keys the index does not hold still
+gallop from the previous key's position, for their insertion point.
 """
 from __future__ import annotations
 
@@ -19,12 +27,55 @@ from numba import njit
 from spark_align.kernels.prefetch import AHEAD, prefetch
 
 
+_HASH_MULT = np.uint64(0x9E3779B97F4A7C15)  # 2^64 / golden ratio: Fibonacci hashing
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _slot(key, shift):  # pragma: no cover
+    return np.int64((np.uint64(key) * _HASH_MULT) >> shift)
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _shift_for(size):  # pragma: no cover
+    # 64 - log2(size), for a power-of-two number of slots
+    bits = 0
+    while (1 << bits) < size:
+        bits += 1
+    return np.uint64(64 - bits)
+
+
+def key_index(table_keys: np.ndarray) -> np.ndarray:
+    """A hash index of sorted, distinct ``table_keys`` for :func:`find_hinted`: int32 slots holding
+    position + 1 (0: empty), a power of two at least twice the keys (at most half full, linear
+    probing). 4-8 bytes per table key; 0.1 s for 7.7M keys."""
+    n = len(table_keys)
+    if n >= 2 ** 31 - 1:
+        raise ValueError(f"a table of {n} keys is too large to index")
+    slots = np.zeros(1 << max(4, (2 * n - 1).bit_length()), np.int32)
+    _build_index(np.ascontiguousarray(table_keys, np.int64), slots)
+    return slots
+
+
 @njit(cache=True, nogil=True)
-def _search_kernel(table_keys, keys, hints, pos_out, hit_out, table_values, default, values_out,
+def _build_index(table_keys, slots):  # pragma: no cover
+    mask = len(slots) - 1
+    shift = _shift_for(len(slots))
+    for p in range(len(table_keys)):
+        h = _slot(table_keys[p], shift)
+        while slots[h] != 0:
+            h = (h + 1) & mask
+        slots[h] = p + 1
+
+
+@njit(cache=True, nogil=True)
+def _search_kernel(table_keys, keys, hints, index, pos_out, hit_out, table_values, default, values_out,
                    lo_out):  # pragma: no cover
     n = len(table_keys)
     with_values = len(values_out) > 0
     with_hints = len(hints) > 0
+    with_index = len(index) > 0
+    mask = len(index) - 1
+    shift = _shift_for(len(index))
     stale = 0
     pos = 0
     for i in range(len(keys)):
@@ -34,6 +85,17 @@ def _search_kernel(table_keys, keys, hints, pos_out, hit_out, table_values, defa
                 prefetch(table_keys, ahead)
                 if with_values:
                     prefetch(table_values, ahead)
+        elif with_index:
+            # the slot of the key AHEAD on, then the table line of the key AHEAD / 2 on (its slot
+            # prefetched by then)
+            if i + AHEAD < len(keys):
+                prefetch(index, _slot(keys[i + AHEAD], shift))
+            if i + AHEAD // 2 < len(keys):
+                ahead = index[_slot(keys[i + AHEAD // 2], shift)] - 1
+                if ahead >= 0:
+                    prefetch(table_keys, ahead)
+                    if with_values:
+                        prefetch(table_values, ahead)
         k = keys[i]
         lo = -1
         found = False
@@ -47,6 +109,17 @@ def _search_kernel(table_keys, keys, hints, pos_out, hit_out, table_values, defa
                 lo = h
             else:
                 stale += 1
+        if lo < 0 and with_index:
+            h = _slot(k, shift)
+            while True:
+                p = index[h] - 1
+                if p < 0:
+                    break
+                if table_keys[p] == k:
+                    lo = p
+                    found = True
+                    break
+                h = (h + 1) & mask
         if lo < 0:
             if i > 0 and k < keys[i - 1]:
                 pos = 0  # not sorted here: restart (correct for any input, fast for sorted input)
@@ -90,7 +163,8 @@ def find(table_keys: np.ndarray, table_values: np.ndarray, keys: np.ndarray,
 
 
 def find_hinted(table_keys: np.ndarray, table_values: np.ndarray, keys: np.ndarray, default: float,
-                hints: np.ndarray | None) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, int]:
+                hints: np.ndarray | None, index: np.ndarray | None = None
+                ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, int]:
     """:func:`find` starting from ``hints``, the insertion points an earlier search returned.
 
     A hint is checked in the table (one read where the key is there; for an absent key, its two
@@ -98,13 +172,14 @@ def find_hinted(table_keys: np.ndarray, table_values: np.ndarray, keys: np.ndarr
     only keys whose hint fails are searched for. The table lines of the hints 64 keys ahead are
     prefetched. Returns (positions, found, values, insertion points, number of keys searched for);
     the insertion points are the hints for the next call. ``hints=None``: every key is searched for.
+    ``index``: :func:`key_index` of ``table_keys`` (None: none), where keys are searched for first.
     """
     if hints is not None and len(hints) != len(keys):
         raise ValueError(f"{len(hints)} hints for {len(keys)} keys")
-    return _search(table_keys, keys, table_values, default, hints)
+    return _search(table_keys, keys, table_values, default, hints, index)
 
 
-def _search(table_keys, keys, table_values, default, hints):
+def _search(table_keys, keys, table_values, default, hints, index=None):
     n_values = len(keys) if table_values is not None else 0
     if not (len(table_keys) and len(keys)):
         return (np.zeros(len(keys), np.int64), np.zeros(len(keys), np.bool_), np.full(n_values, default, np.float64),
@@ -113,7 +188,8 @@ def _search(table_keys, keys, table_values, default, hints):
                             np.empty(n_values, np.float64), np.empty(len(keys), np.int64))  # all written
     searched = _search_kernel(
         np.ascontiguousarray(table_keys, np.int64), np.ascontiguousarray(keys, np.int64),
-        np.zeros(0, np.int64) if hints is None else np.ascontiguousarray(hints, np.int64), pos, hit,
+        np.zeros(0, np.int64) if hints is None else np.ascontiguousarray(hints, np.int64),
+        np.zeros(0, np.int32) if index is None else index, pos, hit,
         np.zeros(0) if table_values is None else np.ascontiguousarray(table_values, np.float64),
         float(default), values, lo)
     return pos, hit, values, lo, len(keys) if hints is None else int(searched)

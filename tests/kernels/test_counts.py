@@ -220,7 +220,10 @@ def test_galloping_positions_equal_searchsorted():
     assert not hit.any() and list(pos) == [0, 0]
 
 
-def test_hinted_lookup_equals_a_fresh_search_whatever_the_hints():
+@pytest.mark.parametrize("indexed", [False, True], ids=["galloping", "hash index"])
+def test_hinted_lookup_equals_a_fresh_search_whatever_the_hints(indexed):
+    """Whether keys are searched for by galloping or through the table's hash index (then galloping
+    for the insertion points of absent ones), every output is the same, with or without hints."""
     from spark_align.kernels import lookup
 
     rng = np.random.default_rng(8)
@@ -228,25 +231,30 @@ def test_hinted_lookup_equals_a_fresh_search_whatever_the_hints():
     values = rng.random(len(table))
     keys = np.concatenate([np.unique(rng.integers(-5, 10 ** 6 + 5, 700)),  # two sorted runs, some absent
                            np.unique(rng.integers(0, 10 ** 6, 300))]).astype(np.int64)
+    keys = np.concatenate([keys, rng.choice(table, 200)])  # and a run of present keys in no order
+    index = lookup.key_index(table) if indexed else None
     want = lookup.find(table, values, keys, 1e-12)
-    pos, hit, got, points, searched = lookup.find_hinted(table, values, keys, 1e-12, None)
+    pos, hit, got, points, searched = lookup.find_hinted(table, values, keys, 1e-12, None, index)
     assert searched == len(keys)
     for a, b in zip(want, (pos, hit, got)):
         np.testing.assert_array_equal(a, b)
     np.testing.assert_array_equal(points, np.searchsorted(table, keys))  # insertion points, unclipped
     # Exact hints: nothing is searched for; wrong ones (shifted, negative, past the end) are found out.
-    assert lookup.find_hinted(table, values, keys, 1e-12, points)[4] == 0
+    assert lookup.find_hinted(table, values, keys, 1e-12, points, index)[4] == 0
     bad = points.copy()
     bad[::5] += 1
     bad[1], bad[2] = -7, len(table) + 9
     wrong = np.count_nonzero(bad != points)
-    pos, hit, got, again, searched = lookup.find_hinted(table, values, keys, 1e-12, bad)
+    pos, hit, got, again, searched = lookup.find_hinted(table, values, keys, 1e-12, bad, index)
     assert searched == wrong
     for a, b in zip(want, (pos, hit, got)):
         np.testing.assert_array_equal(a, b)
     np.testing.assert_array_equal(again, points)
     with pytest.raises(ValueError, match="hints for"):
         lookup.find_hinted(table, values, keys, 1e-12, points[:-1])
+    empty = np.zeros(0, np.int64)
+    _pos, hit, got, _, _ = lookup.find_hinted(empty, np.zeros(0), keys, 1e-12, None, lookup.key_index(empty))
+    assert not hit.any() and (got == 1e-12).all()
 
 
 def test_hints_encoding_round_trips_and_refuses_damage():
