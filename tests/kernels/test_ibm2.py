@@ -104,6 +104,40 @@ def test_diag_matches_enumeration(seed, direction):
     assert mass.sum() == pytest.approx(post[gc.cond_pos > 0].sum())
 
 
+@pytest.mark.parametrize("direction", ["forward", "reverse"])
+def test_compiled_e_steps_equal_the_numpy_link_formulas(direction):
+    """The compiled E-steps give what the link-level numpy formulas (the decoder's) give, on sentences
+    longer than the cap (binned positions, bin sizes) and empty sides: lexical counts and table counts
+    as the posteriors summed per entry, feature, context masses and log-likelihood."""
+    rng = np.random.default_rng(21)
+    pairs = random_corpus(rng, 60, max_len=14, n_src_words=9, n_tgt_words=9) + [([], [1, 2]), ([3], [])]
+    block = make_block(pairs)
+    view = block.view(direction)
+    t = rng.uniform(0.01, 1.0, size=len(block.dict_keys))
+    cap = 4
+    table = ibm2.normalize_table(rng.uniform(0.1, 1.0, ibm2.table_size(cap)), ibm2.uniform_table(cap), cap)
+    assert view.cond_len.max() > cap and view.gen_len.max() > cap
+    counts, table_counts, loglik = ibm2.e_step(view, t, table, cap)
+    gc, post = ibm2.posteriors(view, t, table, cap)
+    _, idx = ibm2.align_probs(view, gc, table, cap)
+    np.testing.assert_allclose(counts, np.bincount(view.cells[gc.flat], weights=post, minlength=len(t)), rtol=1e-12)
+    np.testing.assert_allclose(table_counts, np.bincount(idx, weights=post, minlength=len(table)), rtol=1e-12,
+                               atol=1e-15)
+    assert loglik == pytest.approx(ibm2.pair_loglik(view, t, table, cap).sum(), rel=1e-12)
+
+    p_null, lam = 0.15, 2.5
+    counts, feature, mass, loglik = ibm2.diag_e_step(view, t, p_null, lam, cap)
+    gc, post = ibm2.diag_posteriors(view, t, p_null, lam)
+    j, l, m = ibm2.link_geometry(view, gc)
+    real = gc.cond_pos > 0
+    np.testing.assert_allclose(counts, np.bincount(view.cells[gc.flat], weights=post, minlength=len(t)), rtol=1e-12)
+    assert feature == pytest.approx(float(np.dot(post, ibm2.diag_feature(gc.cond_pos, j, l, m))), rel=1e-12)
+    want_mass = np.bincount(ibm2.diag_context_index(j[real], l[real], m[real], cap), weights=post[real],
+                            minlength=ibm2.diag_n_contexts(cap))
+    np.testing.assert_allclose(mass, want_mass, rtol=1e-12, atol=1e-15)
+    assert loglik == pytest.approx(ibm2.diag_pair_loglik(view, t, p_null, lam).sum(), rel=1e-12)
+
+
 def test_long_sides_share_rows_and_stay_normalised():
     cap = 4
     rng = np.random.default_rng(3)
