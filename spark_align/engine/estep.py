@@ -99,7 +99,7 @@ def make_estep(model, directions: tuple[str, ...], tables_src, dense: dict[str, 
         fs, _root = fsspec.core.url_to_fs(blocks_url)
         hints_fs, hints_root = fsspec.core.url_to_fs(hints_url) if hints_url else (None, None)
         hinted = [d for d in directions if hints_fs is not None and tables[d].constant is None]
-        task = mstep.TaskCounts(tables)
+        task = mstep.TaskCounts(tables, reuse=True)
         lookup_seconds = add_seconds = read_seconds = 0.0
         searched_total = dict.fromkeys(directions, 0)
         keys_total = dict.fromkeys(directions, 0)

@@ -50,8 +50,10 @@ def fold_rows(buffer: counts.CountBuffer | counts.HashCounts, dirs, src, tgt, hi
 
 def payloads(buffer: counts.CountBuffer | counts.HashCounts, n_buckets: int):
     """(bucket, bytes) records of a task's folded rows: one per non-empty bucket."""
-    for bucket, part in _split_arrays(*buffer.result(), n_buckets):
-        yield bucket, counts.encode_rows(*part)
+    yield from sorted(counts.encode_by_bucket(*buffer.result(), n_buckets).items())
+
+
+_SPARE_SLOTS = "spare hash slots"  # worker_scratch entry: the last E-step task's emptied HashCounts table
 
 
 class TaskCounts:
@@ -65,9 +67,13 @@ class TaskCounts:
     that has a table, on top of the table itself.
     """
 
-    def __init__(self, tables: dict) -> None:
+    def __init__(self, tables: dict, *, reuse: bool = False) -> None:
+        """``reuse``: start from, and leave behind, the hash table of the Python worker's previous task
+        with the same table (``engine.tables.worker_scratch``), as the accumulators are; for the
+        E-step's counts (the first iteration folds every count in it), not for a few scalar rows."""
         self.tables = tables
-        self.buffer = counts.HashCounts()
+        self.reuse = reuse
+        self.buffer = counts.HashCounts(slots=worker_scratch().pop(_SPARE_SLOTS, None) if reuse else None)
         self.acc: dict[int, tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
 
     def add(self, dict_keys: np.ndarray, found, d: int, emitted: np.ndarray, values: np.ndarray, other) -> None:
@@ -110,6 +116,8 @@ class TaskCounts:
             touched.fill(False)
             worker_scratch()[("spare accumulators", d)] = (acc, touched)
         self.acc = {}
+        if self.reuse:
+            worker_scratch()[_SPARE_SLOTS] = self.buffer.release()
 
     def payloads(self, n_buckets: int):
         """(bucket, bytes) records: every count of this task, one record per non-empty bucket."""
@@ -123,24 +131,6 @@ class TaskCounts:
         self._release()
         for bucket in sorted(by_bucket):
             yield bucket, b"".join(by_bucket[bucket])
-
-
-def _split_arrays(keys, hi, lo, n_buckets: int):
-    """(bucket, (keys, hi, lo)) for every non-empty bucket of the rows."""
-    for b, part in _groups(counts.buckets_of(keys, n_buckets)):
-        yield b, (keys[part], hi[part], lo[part])
-
-
-def _groups(bucket: np.ndarray):
-    """(bucket, row indexes in their original order) for every bucket present (a stable radix sort while
-    bucket numbers fit 16 bits)."""
-    if len(bucket) == 0:
-        return
-    small = bucket.astype(np.int16) if bucket.max() < 2 ** 15 else bucket
-    order = np.argsort(small, kind="stable")
-    cuts = np.flatnonzero(np.diff(bucket[order])) + 1
-    for part in np.split(order, cuts):
-        yield int(bucket[part[0]]), part
 
 
 def make_payload_folder(n_buckets: int):

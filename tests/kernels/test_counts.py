@@ -346,6 +346,24 @@ def test_damaged_payloads_are_refused(damage):
         counts.decode_rows(data)
 
 
+def test_encode_by_bucket_equals_grouping_rows_then_encoding():
+    """The compiled per-bucket encoder gives, for every bucket, the bytes of that bucket's rows (in
+    their order) encoded on their own, with the bucket numbers of :func:`counts.buckets_of`."""
+    rng = np.random.default_rng(31)
+    dirs, src, tgt, values = _rows(rng, 6000)
+    src[:50], src[50:60] = -1, -2  # dense and scalar rows
+    keys = np.sort(counts.row_keys(dirs, src, tgt))
+    hi, lo = rng.integers(-2 ** 40, 2 ** 40, len(keys)), rng.integers(0, 2 ** 33, len(keys))
+    for n_buckets in (1, 7):
+        bucket = counts.buckets_of(keys, n_buckets)
+        segments = counts.encode_by_bucket(keys, hi, lo, n_buckets)
+        assert sorted(segments) == sorted(set(bucket.tolist()))
+        for b, data in segments.items():
+            part = bucket == b
+            assert data == counts.encode_rows(keys[part], hi[part], lo[part])
+    assert counts.encode_by_bucket(keys[:0], hi[:0], lo[:0], 7) == {}
+
+
 @pytest.mark.parametrize("d", [0, 1])
 def test_encode_touched_equals_gathering_by_bucket_then_encoding(d):
     rng = np.random.default_rng(12 + d)
