@@ -1,4 +1,4 @@
-"""IBM Model 1 kernels (Brown et al. 1993): numpy, and the E-step compiled by numba.
+"""IBM Model 1 kernels (Brown et al. 1993), compiled by numba.
 
 Model: p(f_1..f_m | e_0..e_l) = prod_j sum_i t(f_j | e_i) / (l + 1), with e_0 = NULL.
 Posterior of link (i, j): t(f_j | e_i) / sum_i' t(f_j | e_i').
@@ -9,7 +9,9 @@ word) for that entry's key). The training E-step, which runs once per link per
 iteration, is a numba-compiled loop over the view's cell grid: the numpy
 formulation needs about ten int64 temporaries per link and ran at 0.17 of a C
 reference (benchmarks/bench_vs_c.py); the compiled loop reads each cell twice
-and writes nothing per link but the count. Decoding keeps numpy (it runs once).
+and writes nothing per link but the count. Decoding's posteriors and per-pair
+likelihood are one compiled pass too, and so is the per-token argmax the other
+models share: the output pass decodes every pair of the corpus.
 The compiled code is cached on disk (``cache=True``), so a Spark Python worker
 pays the compile only once per machine, not once per task.
 """
@@ -19,12 +21,6 @@ import numpy as np
 from numba import njit
 
 from spark_align.kernels.ragged import GenCells, View
-
-
-def link_scores(view: View, t: np.ndarray, gc: GenCells | None = None) -> tuple[GenCells, np.ndarray]:
-    """(links, t of every link): the table lookup, one gather per link."""
-    gc = gc if gc is not None else view.gen_cells()
-    return gc, t[view.cells[gc.flat]]
 
 
 def e_step(view: View, t: np.ndarray) -> tuple[np.ndarray, float]:
@@ -73,23 +69,60 @@ def pair_loglik(view: View, t: np.ndarray, gc: GenCells | None = None) -> np.nda
 
 def posteriors_and_loglik(view: View, t: np.ndarray, gc: GenCells | None = None
                           ) -> tuple[GenCells, np.ndarray, np.ndarray]:
-    """:func:`posteriors` and :func:`pair_loglik` from one pass (they share each token's denominator)."""
-    gc, p = link_scores(view, t, gc)
-    denom = np.bincount(gc.token, weights=p, minlength=gc.n_tokens)
-    token_pair = np.repeat(np.arange(view.n_pairs), view.gen_len)
-    per_pair = np.bincount(token_pair, weights=np.log(denom), minlength=view.n_pairs)
-    return gc, p / denom[gc.token], per_pair - view.gen_len * np.log(view.cond_len + 1.0)
+    """:func:`posteriors` and :func:`pair_loglik` from one compiled pass (they share each token's
+    denominator). 32,768 pairs decoded in one process: 0.27 s for the numpy formulas (a gather per
+    link, bincounts) against a few hundredths."""
+    gc = gc if gc is not None else view.gen_cells()
+    post, per_pair = np.empty(len(gc.flat)), np.empty(view.n_pairs)
+    _posteriors_compiled(np.asarray(view.cond_len, np.int64), np.asarray(view.gen_len, np.int64),
+                         np.asarray(view.cell_offsets, np.int64), np.asarray(view.cells, np.int32),
+                         np.asarray(t, np.float64), post, per_pair)
+    return gc, post, per_pair
+
+
+@njit(cache=True, nogil=True)
+def _posteriors_compiled(cond_len, gen_len, cell_offsets, cells, t, post, per_pair):  # pragma: no cover
+    # links in gen_cells order: token-major (pairs in order), then cond positions 0..l
+    k = 0
+    for p in range(len(cond_len)):
+        n_rows, m = cond_len[p] + 1, gen_len[p]
+        width, base = m + 1, cell_offsets[p]
+        ll = 0.0
+        for j in range(1, m + 1):
+            denom = 0.0
+            for i in range(n_rows):
+                v = t[cells[base + i * width + j]]
+                post[k + i] = v
+                denom += v
+            for i in range(n_rows):
+                post[k + i] = post[k + i] / denom
+            k += n_rows
+            ll += np.log(denom)
+        per_pair[p] = ll - m * np.log(n_rows + 0.0)
 
 
 def argmax_per_token(gc: GenCells, score: np.ndarray) -> np.ndarray:
     """Best cond position (0 = NULL) of each token; ties go to the later position."""
-    if gc.n_tokens == 0:
-        return np.zeros(0, dtype=np.int64)
-    starts = np.flatnonzero(np.r_[True, gc.token[1:] != gc.token[:-1]])
-    best = np.maximum.reduceat(score, starts)
-    is_best = score == best[gc.token]
-    marked = np.where(is_best, gc.cond_pos, -1)
-    return np.maximum.reduceat(marked, starts)
+    best = np.zeros(gc.n_tokens, dtype=np.int64)
+    _argmax_compiled(np.asarray(gc.token, np.int64), np.asarray(gc.cond_pos, np.int64),
+                     np.asarray(score, np.float64), best)
+    return best
+
+
+@njit(cache=True, nogil=True)
+def _argmax_compiled(token, cond_pos, score, best):  # pragma: no cover
+    # links of a token are consecutive, cond positions ascending: >= keeps the later of equal scores
+    n = len(token)
+    i = 0
+    while i < n:
+        tok = token[i]
+        top, arg = score[i], cond_pos[i]
+        i += 1
+        while i < n and token[i] == tok:
+            if score[i] >= top:
+                top, arg = score[i], cond_pos[i]
+            i += 1
+        best[tok] = arg
 
 
 def viterbi(view: View, t: np.ndarray, gc: GenCells | None = None) -> tuple[np.ndarray, np.ndarray]:
