@@ -30,7 +30,8 @@ core time:
   ``output records`` (grouping and compressing a task's counts for the shuffle), ``other E-step``
   (the rest of the E-step tasks' wall time: block views, the reverse grid, Python),
   ``reducers`` (summing, normalising and writing the table) and ``rest`` (Spark scheduling and
-  shuffle, the driver, and idle cores);
+  shuffle, the driver, and idle cores; ``driver``: the part of it between the iteration's Spark jobs,
+  when the driver plans and commits and the cores wait);
 * ``outside_compute``: the same with the lookup and the accumulation counted as E-step
   computation: ``1 - (kernel + lookup + accumulation seconds) / (iteration seconds x cores)``;
 * ``exponent``: the slope of log(iteration seconds) against log(pairs) over the sizes run;
@@ -123,6 +124,7 @@ def _child_train(args) -> None:
                      "estep_task_seconds": m["metrics"][dirs[0]].get("estep_task_seconds", 0.0),
                      **{f"{part}_seconds": m["metrics"][dirs[0]].get(f"{part}_seconds", 0.0) for part in PARTS},
                      "reduce_task_seconds": m["metrics"][dirs[0]].get("reduce_task_seconds", 0.0),
+                     "job_seconds": m["metrics"][dirs[0]].get("job_seconds", m["seconds"]),
                      **{key: sum(m["metrics"][d].get(key, 0.0) for d in dirs)
                         for key in ("lookup_keys_searched", "lookup_keys", "lookup_keys_trusted")},
                      "links": sum(m["metrics"][d]["links"] for d in dirs),
@@ -175,6 +177,8 @@ def run_config(work: Path, pairs: int, *, vocab: int, shipping: str, block_size:
         looked_up = sum(r.get("lookup_keys", 0.0) for r in later)
         trusted = sum(r.get("lookup_keys_trusted", 0.0) for r in later)
         core_s = sum(r["seconds"] for r in later) / len(later) * cores
+        # the driver's own time between the Spark jobs of an iteration (planning, committing), cores idle
+        between = sum(r["seconds"] - r.get("job_seconds", r["seconds"]) for r in later) / len(later) * cores
         compute = kernel + parts["lookup"] + parts["accumulate"]
         result.update(iter_s=secs, kernel_s=kernel, links=links, mlinks_core=links / kernel / 1e6,
                       outside=1.0 - kernel / core_s, outside_compute=1.0 - compute / core_s,
@@ -185,7 +189,8 @@ def run_config(work: Path, pairs: int, *, vocab: int, shipping: str, block_size:
                       # where the core time went (shares of cores x iteration seconds)
                       **{f"{part}_share": v / core_s for part, v in parts.items()},
                       estep_other=(task - kernel - sum(parts.values())) / core_s if task else float("nan"),
-                      reduce_share=reduce / core_s, rest_share=1.0 - max(task, kernel) / core_s - reduce / core_s)
+                      reduce_share=reduce / core_s, rest_share=1.0 - max(task, kernel) / core_s - reduce / core_s,
+                      driver_share=between / core_s)
     subprocess.run(["rm", "-rf", str(run), memdir])
     return result
 
@@ -201,7 +206,8 @@ def fmt(r: dict) -> str:
             f"  (lookup {pct('lookup_share')} with {pct('searched_share')} of keys searched and {pct('trusted_share')} at"
             f" stored positions, accumulation {pct('accumulate_share')}, table load"
             f" {pct('table_load_share')}, block reads {pct('block_read_share')}, output records {pct('payload_share')},"
-            f" other E-step {pct('estep_other')}, reducers {pct('reduce_share')}, rest {pct('rest_share')})\n"
+            f" other E-step {pct('estep_other')}, reducers {pct('reduce_share')}, rest {pct('rest_share')}, of which"
+            f" the driver between jobs {pct('driver_share')})\n"
             f"    task RSS {r['task_rss_mb']:6.0f} MB  "
             f"driver RSS {r['driver_rss_mb']:5.0f} MB  output pass {r.get('output_s', float('nan')):.1f} s  "
             f"(load {r['load_avg']:.1f}, total {r['total_s']:.0f} s)")
