@@ -139,9 +139,10 @@ class Trainer:
             units = self.block_units()
             # Two tasks per core by default: every task ships the entries it touched, so fewer tasks
             # shuffle fewer bytes and leave the reducers less to merge (13 tasks shuffled 274 MB at 100k
-            # pairs). One per core measured 9% faster per iteration (8.5 against 9.3 s at 1M pairs,
-            # local[2]) but with 38% more peak worker memory (2015 against 1456 MB); two also leave a
-            # retried or slow task less to redo. The setting chooses.
+            # pairs). One per core measured 9-13% faster per Model 1 iteration (8.3 against 9.0-9.5 s at
+            # 1M pairs, local[2]) with 14% more peak worker memory (1726 against 1504-1520 MB); two leave
+            # a retried or slow task less to redo and spread uneven tasks better over the cores. The
+            # setting chooses.
             per_core = tasks_per_core(self.spark.conf.get(TASKS_PER_CORE_CONF, str(TASKS_PER_CORE)))
             n_tasks = max(1, min(len(units), per_core * sc.defaultParallelism))
             estep = make_estep(model, self.directions, source, state.dense,
