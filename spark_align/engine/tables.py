@@ -72,7 +72,7 @@ class DirectionTable:
         has no positions: (None, probabilities, None, 0).
 
         Without hints, keys are found through the table's hash index (built on first use, kept with
-        the table: 4-8 bytes per entry) when they are at least 1/64 of the table, as a block's
+        the table: 8 bytes per entry) when they are at least 1/64 of the table, as a block's
         dictionary is; fewer keys gallop without it."""
         if self.constant is not None:
             return None, np.full(len(dict_keys), self.constant), None, 0
