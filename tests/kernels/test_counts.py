@@ -408,6 +408,33 @@ def test_count_buffer_folds_payloads_and_arrays_alike():
         counts.CountBuffer().add_payload(b"\x01" * 10)
 
 
+def test_merging_runs_that_cover_separate_ranges():
+    """A task's forward and reverse runs cover separate key ranges: disjoint, nested, touching and
+    overlapping runs, merged as they are decoded with and without folded arrays, give the plain sums."""
+    rng = np.random.default_rng(41)
+    dirs, src, tgt, values = _rows(rng, 12000, n_src=200, n_tgt=200)
+    hi, lo = estep.to_fixed(values)
+    keys = counts.row_keys(dirs, src, tgt)
+    order = np.argsort(keys, kind="stable")
+    keys, hi, lo = keys[order], hi[order], lo[order]
+    cuts = [0, 1500, 1500, 4000, 6000, 12000]  # disjoint consecutive ranges, one empty
+    runs = [(keys[a:b], hi[a:b], lo[a:b]) for a, b in zip(cuts, cuts[1:])]
+    # and rows of the same keys again: a nested run and one spanning everything, sparse
+    extra = [np.arange(2000, 3000, 7), np.arange(0, 12000, 13)]
+    runs += [(keys[i], hi[i], lo[i]) for i in extra]
+    every = np.concatenate([np.arange(a, b) for a, b in zip(cuts, cuts[1:])] + extra)
+    want = counts.reduce_sorted(*(a[np.sort(every)] for a in (keys, hi, lo)))
+    payloads = [counts.encode_rows(*counts.reduce_sorted(*r)) for r in runs]
+    for folded_first in (False, True):
+        if folded_first:  # the first run as folded arrays (run 0), the others as payloads
+            got = counts._merge_payloads(counts.reduce_sorted(*runs[0]), payloads[1:], len(every))
+        else:
+            got = counts._merge_payloads(None, payloads[::-1], len(every))
+        assert got is not None
+        for g, w in zip(got, want):
+            np.testing.assert_array_equal(g, w)
+
+
 @pytest.mark.parametrize("compact_rows", [10 ** 9, 2500])
 def test_payloads_are_merged_as_they_are_decoded(compact_rows):
     """Sorted payload segments are merged while they are decoded (no decoded copy); unsorted segments
