@@ -98,7 +98,7 @@ def test_forward_backward_matches_enumeration(seed, direction):
     assert np.allclose(counts, np.bincount(view.cells[gc.flat], weights=post, minlength=len(t)))
 
 
-def test_batching_equals_one_pair_at_a_time():
+def test_a_block_equals_its_pairs_one_at_a_time():
     rng = np.random.default_rng(11)
     pairs = random_corpus(rng, 40, max_len=9, n_src_words=12, n_tgt_words=12)
     block = make_block(pairs)
