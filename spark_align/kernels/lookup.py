@@ -218,11 +218,9 @@ class StoredHints:
 
 def encode_hints(hints: StoredHints) -> bytes:
     """:class:`StoredHints` as bytes for :func:`decode_hints`."""
-    points = np.asarray(hints.points, np.int64)
-    steps = np.diff(points, prepend=np.int64(0))
-    small = (steps >= 0) & (steps < _ESCAPE)
-    codes = np.where(small, steps, _ESCAPE).astype(np.uint8)
-    exceptions = points[~small]
+    points = np.ascontiguousarray(hints.points, np.int64)
+    codes, exceptions = np.empty(len(points), np.uint8), np.empty(len(points), np.int64)
+    exceptions = exceptions[:_do_steps(points, codes, exceptions)]
     found = np.zeros(len(points), bool) if hints.found is None else np.asarray(hints.found, bool)
     if len(found) != len(points) or len(hints.keys_id) not in (0, 16):
         raise ValueError("found flags or keys id do not fit the points")
@@ -294,6 +292,24 @@ def _gather(table_values, points, found, sizes, default, out):  # pragma: no cov
             prefetch(table_values, points[i + AHEAD])
         out[i] = table_values[points[i]] if found[i] else default
     return True
+
+
+@njit(cache=True, nogil=True)
+def _do_steps(points, codes, exceptions):  # pragma: no cover
+    # each point as its step from the one before (from 0): one byte while 0..254, else the escape
+    # byte and the point itself among the exceptions; returns the number of exceptions
+    prev = 0
+    used = 0
+    for i in range(len(points)):
+        step = points[i] - prev
+        if 0 <= step < 255:
+            codes[i] = step
+        else:
+            codes[i] = 255
+            exceptions[used] = points[i]
+            used += 1
+        prev = points[i]
+    return used
 
 
 @njit(cache=True, nogil=True)
