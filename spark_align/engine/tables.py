@@ -73,13 +73,14 @@ class DirectionTable:
 
         Without hints, keys are found through the table's hash index (built on first use, kept with
         the table: 8 bytes per entry) when they are at least 1/64 of the table, as a block's
-        dictionary is; fewer keys gallop without it."""
+        dictionary is; fewer keys, and tables of 2^30 entries or more, gallop without it."""
         if self.constant is not None:
             return None, np.full(len(dict_keys), self.constant), None, 0
         from spark_align.kernels import lookup
 
         index = None
-        if hints is None and (self._index or 64 * len(dict_keys) >= len(self.keys)):
+        worth_it = 64 * len(dict_keys) >= len(self.keys) and len(self.keys) < lookup.MAX_INDEXED
+        if hints is None and (self._index or worth_it):
             if not self._index:
                 self._index["slots"] = lookup.key_index(self.keys)
             index = self._index["slots"]

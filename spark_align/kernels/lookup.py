@@ -36,13 +36,16 @@ def _slot(key, size):  # pragma: no cover
     return np.int64((((np.uint64(key) * _HASH_MULT) >> np.uint64(32)) * np.uint64(size)) >> np.uint64(32))
 
 
+MAX_INDEXED = 2 ** 30  # int32 slots hold positions + 1; larger tables are searched by galloping
+
+
 def key_index(table_keys: np.ndarray) -> np.ndarray:
     """A hash index of sorted, distinct ``table_keys`` for :func:`find_hinted`: int32 slots holding
     position + 1 (0: empty), twice as many as keys (half full, linear probing): 8 bytes per table
     key; 0.13 s for 10M keys. Fuller, a search reads more wrong candidates in the table: at 61% full,
     31 ns per key against 19 at 30% (bench_kernels, 10.2M entries)."""
     n = len(table_keys)
-    if n >= 2 ** 30:
+    if n >= MAX_INDEXED:
         raise ValueError(f"a table of {n} keys is too large to index")
     slots = np.zeros(max(16, 2 * n), np.int32)
     _build_index(np.ascontiguousarray(table_keys, np.int64), slots)
