@@ -257,6 +257,33 @@ def test_hinted_lookup_equals_a_fresh_search_whatever_the_hints(indexed):
     assert not hit.any() and (got == 1e-12).all()
 
 
+def test_a_table_indexes_its_keys_only_when_worth_it(monkeypatch):
+    """A table builds its hash index for a search of many keys (a block dictionary against the table),
+    not for a few, nor when it is too large for the index; the results are the same every way."""
+    from spark_align.engine.tables import DirectionTable
+    from spark_align.kernels import lookup
+
+    rng = np.random.default_rng(9)
+    table_keys = np.unique(rng.integers(0, 10 ** 7, 20000).astype(np.int64))
+    probs = rng.random(len(table_keys))
+    many = np.unique(np.concatenate([rng.choice(table_keys, 3000), rng.integers(0, 10 ** 7, 500)]))
+    few = many[::100]
+    want = lookup.find(table_keys, probs, many, 1e-12)
+    table = DirectionTable(table_keys, probs)
+    table.find_hinted(few, None)
+    assert not table._index
+    (pos, hit), got, _, _ = table.find_hinted(many, None)
+    assert "slots" in table._index
+    for a, b in zip(want, (pos, hit, got)):
+        np.testing.assert_array_equal(a, b)
+    monkeypatch.setattr(lookup, "MAX_INDEXED", len(table_keys))
+    large = DirectionTable(table_keys, probs)
+    (pos, hit), got, _, _ = large.find_hinted(many, None)
+    assert not large._index
+    for a, b in zip(want, (pos, hit, got)):
+        np.testing.assert_array_equal(a, b)
+
+
 def test_hints_encoding_round_trips_and_refuses_damage():
     from spark_align.kernels import lookup
 
