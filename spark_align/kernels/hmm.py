@@ -42,7 +42,7 @@ import numpy as np
 from numba import njit
 
 from spark_align.kernels.ibm1 import argmax_per_token
-from spark_align.kernels.ragged import GenCells, View
+from spark_align.kernels.ragged import GenCells, View, offsets_from_lengths
 
 MIN_PROB = 1e-12
 CONTEXT_CAP = 50
@@ -159,9 +159,7 @@ def _by_cond_length(cond_len: np.ndarray, out_len: np.ndarray) -> tuple[np.ndarr
     per pair in pair order). The kernels visit pairs by length so that they compute the transition
     matrix once per length rather than on nearly every pair: Viterbi decoding (l^2 logarithms per
     matrix) of 3,000 random pairs took 10.3 ms against 18.4, the E-step 15.2 against 16.3."""
-    first = np.zeros(len(out_len), np.int64)
-    np.cumsum(out_len[:-1], out=first[1:])
-    return np.argsort(cond_len, kind="stable"), first
+    return np.argsort(cond_len, kind="stable"), offsets_from_lengths(out_len)[:-1]
 
 
 @njit(cache=True, nogil=True)
