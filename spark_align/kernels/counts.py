@@ -274,8 +274,14 @@ def _hash_shift(capacity):  # pragma: no cover
     return np.uint64(64 - bits)
 
 
-_FIBONACCI = np.uint64(0x9E3779B97F4A7C15)  # 2^64 / golden ratio
+FIBONACCI = np.uint64(0x9E3779B97F4A7C15)  # 2^64 / golden ratio: Fibonacci hashing (here and kernels.lookup)
 _HASH_AHEAD = 16  # rows ahead whose slot is prefetched
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _home(key, shift):  # pragma: no cover
+    # the home slot of a key: the top bits of key x 2^64/phi
+    return np.int64((np.uint64(key) * FIBONACCI) >> shift)
 
 
 @njit(cache=True, nogil=True)
@@ -287,9 +293,9 @@ def _hash_insert(slots, keys, hi, lo, start, used, limit):  # pragma: no cover
     n = len(keys)
     for i in range(start, n):
         if i + _HASH_AHEAD < n:
-            prefetch(slots, np.int64((np.uint64(keys[i + _HASH_AHEAD] + 1) * _FIBONACCI) >> shift))
+            prefetch(slots, _home(keys[i + _HASH_AHEAD] + 1, shift))
         k = keys[i] + 1
-        h = np.int64((np.uint64(k) * _FIBONACCI) >> shift)
+        h = _home(k, shift)
         while True:
             t = slots[h, 0]
             if t == k:
@@ -315,11 +321,11 @@ def _rehash(old, new):  # pragma: no cover
     shift = _hash_shift(len(new))
     for s in range(len(old)):
         if s + _HASH_AHEAD < len(old) and old[s + _HASH_AHEAD, 0] != 0:
-            prefetch(new, np.int64((np.uint64(old[s + _HASH_AHEAD, 0]) * _FIBONACCI) >> shift))
+            prefetch(new, _home(old[s + _HASH_AHEAD, 0], shift))
         k = old[s, 0]
         if k == 0:
             continue
-        h = np.int64((np.uint64(k) * _FIBONACCI) >> shift)
+        h = _home(k, shift)
         while new[h, 0] != 0:
             h = (h + 1) & mask
         new[h, 0] = k
@@ -344,9 +350,9 @@ def _hash_sums(slots, keys, hi, lo):  # pragma: no cover
     n = len(keys)
     for i in range(n):
         if i + _HASH_AHEAD < n:
-            prefetch(slots, np.int64((np.uint64(keys[i + _HASH_AHEAD] + 1) * _FIBONACCI) >> shift))
+            prefetch(slots, _home(keys[i + _HASH_AHEAD] + 1, shift))
         k = keys[i] + 1
-        h = np.int64((np.uint64(k) * _FIBONACCI) >> shift)
+        h = _home(k, shift)
         while slots[h, 0] != k:
             h = (h + 1) & mask
         hi[i] = slots[h, 1]

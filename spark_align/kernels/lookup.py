@@ -24,16 +24,16 @@ from dataclasses import dataclass
 import numpy as np
 from numba import njit
 
+from spark_align.kernels.counts import FIBONACCI
 from spark_align.kernels.prefetch import AHEAD, prefetch
 
 
-_HASH_MULT = np.uint64(0x9E3779B97F4A7C15)  # 2^64 / golden ratio: Fibonacci hashing
 
 
 @njit(cache=True, nogil=True, inline="always")
 def _slot(key, size):  # pragma: no cover
     # the top 32 bits of key x 2^64/phi, scaled to 0..size-1 (no power-of-two size needed)
-    return np.int64((((np.uint64(key) * _HASH_MULT) >> np.uint64(32)) * np.uint64(size)) >> np.uint64(32))
+    return np.int64((((np.uint64(key) * FIBONACCI) >> np.uint64(32)) * np.uint64(size)) >> np.uint64(32))
 
 
 MAX_INDEXED = 2 ** 30  # int32 slots hold positions + 1; larger tables are searched by galloping
