@@ -117,9 +117,10 @@ def forward_backward(view: View, t: np.ndarray, jump: np.ndarray, p_null: float,
     """
     gc = gc if gc is not None else view.gen_cells()
     post = np.empty(len(gc.flat))
-    stats = np.zeros(stats_size(max_jump) if want_stats else 0)
-    loglik = _run(view, t, jump, p_null, max_jump, backward=True, counts=np.zeros(0), stats=stats, post=post)
-    return gc, post, (stats if want_stats else np.zeros(stats_size(max_jump))), loglik
+    stats = np.zeros(stats_size(max_jump))
+    loglik = _run(view, t, jump, p_null, max_jump, backward=True, counts=np.zeros(0),
+                  stats=stats if want_stats else np.zeros(0), post=post)
+    return gc, post, stats, loglik
 
 
 def e_step(view: View, t: np.ndarray, jump: np.ndarray, p_null: float, max_jump: int,
