@@ -30,20 +30,18 @@ DECODED_SCHEMA = (f"_row long, alignment {LINK_SQL}, alignment_forward {LINK_SQL
 
 def directional_links(block: ragged.Block, direction: str, token, cond_pos, post):
     """Chosen links of one direction as flat (pair, source index, target index, posterior), sorted."""
-    if direction == "forward":  # generated = target tokens, cond = source positions
-        pair = ragged.row_of(block.tgt_offsets)[token]
+    forward = direction == "forward"
+    ordered = ragged.links_by_pair(block.tgt_offsets if forward else block.src_offsets, token, cond_pos, post,
+                                   forward=forward)
+    if ordered is not None:
+        return ordered
+    # Links not given token-major (none of the decoders gives them otherwise): pairs per token, then a sort.
+    pair = ragged.row_of(block.tgt_offsets if forward else block.src_offsets)[token]
+    if forward:  # generated = target tokens, cond = source positions
         src_i, tgt_j = cond_pos - 1, token - block.tgt_offsets[pair]
     else:
-        pair = ragged.row_of(block.src_offsets)[token]
         src_i, tgt_j = token - block.src_offsets[pair], cond_pos - 1
-    key = _link_key(pair, src_i, tgt_j)
-    if len(key) < 2 or bool(np.all(key[1:] > key[:-1])):  # the reverse direction lists links in order
-        return pair, src_i, tgt_j, post
-    # The forward lists them by target within each pair: a stable sort by source within each pair puts
-    # them in order; anything else falls back to sorting the (unique) keys.
-    order = ragged.order_within_rows(pair, src_i)
-    if not bool(np.all(np.diff(key[order]) > 0)):
-        order = np.argsort(key)
+    order = np.argsort(_link_key(pair, src_i, tgt_j), kind="stable")
     return pair[order], src_i[order], tgt_j[order], post[order]
 
 
@@ -164,7 +162,9 @@ def decode_units(decoder, blocks_url: str, hints_url: str | None = None, directi
 
         from spark_align.engine import hints
         from spark_align.engine.mstep import read_unit
+        from spark_align.engine.tables import keep_freed_memory
 
+        keep_freed_memory()
         fs, _root = fsspec.core.url_to_fs(blocks_url)
         hints_fs, hints_root = fsspec.core.url_to_fs(hints_url) if hints_url else (None, None)
         for batch in batches:

@@ -203,37 +203,83 @@ def _links_at_least(token, cond_pos, post, threshold, out):  # pragma: no cover
     return m
 
 
-def order_within_rows(row: np.ndarray, col: np.ndarray) -> np.ndarray:
-    """The stable order that sorts elements by ``col`` within each run of equal ``row``: ``row``
-    non-decreasing, ``col`` small non-negative integers (positions in a sentence). A counting sort per
-    run, in one compiled pass: a forward direction's links come target-major within each pair and are
-    wanted source-major, where an argsort of int64 keys cost a tenth of decoding a block."""
-    row, col = np.ascontiguousarray(row, np.int64), np.ascontiguousarray(col, np.int64)
-    out = np.empty(len(row), np.int64)
-    if len(row):
-        _order_within_rows(row, col, int(col.max()), out)
+def links_by_pair(gen_offsets: np.ndarray, token: np.ndarray, cond_pos: np.ndarray, post: np.ndarray, *,
+                  forward: bool):
+    """Links of one direction, given token-major (``token`` a generated token's flat index, non-decreasing;
+    ``cond_pos`` 1-based, 0 the NULL word), as flat (pair, source index, target index, posterior) sorted by
+    (pair, source, target), in one compiled pass; None if they do not come token-major (a token going
+    down, or cond positions not increasing within a token), for the caller to sort.
+
+    ``gen_offsets`` are the generated side's CSR offsets: the target side's for the forward direction
+    (source index = cond_pos - 1, and each pair's links are counting-sorted by it, stably), the source
+    side's for the reverse (links already in order). Replaces the pairs of every token, the int64 link
+    keys, a check that they increase and a sort within pairs in numpy, a quarter of decoding a block.
+    """
+    token, cond_pos = np.ascontiguousarray(token, np.int64), np.ascontiguousarray(cond_pos, np.int64)
+    post = np.ascontiguousarray(post, np.float64)
+    out = (np.empty(len(token), np.int64), np.empty(len(token), np.int64), np.empty(len(token), np.int64),
+           np.empty(len(token), np.float64))
+    if len(token) == 0:
+        return out
+    max_cond = int(cond_pos.max())
+    if max_cond < 0 or not _links_by_pair(np.ascontiguousarray(gen_offsets, np.int64), token, cond_pos, post,
+                                          bool(forward), max_cond, *out):
+        return None
     return out
 
 
 @njit(cache=True, nogil=True)
-def _order_within_rows(row, col, max_col, out):  # pragma: no cover - compiled
-    starts = np.zeros(max_col + 2, np.int64)
-    n = len(row)
+def _links_by_pair(gen_offsets, token, cond_pos, post, forward, max_cond, pair, src_i, tgt_j,
+                   out_post):  # pragma: no cover - compiled
+    # Token-major input with cond positions increasing within each token has no repeated link, and is
+    # (source, target) ordered within each pair for the reverse; a stable sort by source keeps that
+    # for the forward. Checked in the pass that finds each pair's run of links.
+    n = len(token)
+    starts = np.zeros(max_cond + 2, np.int64)
+    p = 0
     a = 0
     while a < n:
-        b = a
-        top = 0
-        while b < n and row[b] == row[a]:
-            starts[col[b] + 1] += 1
-            top = max(top, col[b])
+        t = token[a]
+        if t < 0 or t >= gen_offsets[len(gen_offsets) - 1]:
+            return False
+        while gen_offsets[p + 1] <= t:
+            p += 1
+        end = gen_offsets[p + 1]
+        base = gen_offsets[p]
+        prev_t, prev_c = t, np.int64(-1)
+        b = a  # the run of pair p's links: [a, b)
+        top = np.int64(0)
+        while b < n:
+            t = token[b]
+            c = cond_pos[b]
+            if t >= end:
+                break
+            if t < prev_t or (t == prev_t and c <= prev_c) or c < 0:
+                return False
+            prev_t, prev_c = t, c
+            if forward:
+                starts[c + 1] += 1
+                top = max(top, c)
+            else:
+                pair[b] = p
+                src_i[b] = t - base
+                tgt_j[b] = c - 1
+                out_post[b] = post[b]
             b += 1
-        for c in range(1, top + 2):  # starts[c]: elements of the run with a smaller col
-            starts[c] += starts[c - 1]
-        for k in range(a, b):
-            out[a + starts[col[k]]] = k
-            starts[col[k]] += 1
-        starts[:top + 2] = 0
+        if forward:  # wanted source-major: a counting sort by cond position, stable (targets stay in order)
+            for c in range(1, top + 2):
+                starts[c] += starts[c - 1]
+            for k in range(a, b):
+                c = cond_pos[k]
+                at = a + starts[c]
+                starts[c] += 1
+                pair[at] = p
+                src_i[at] = c - 1
+                tgt_j[at] = token[k] - base
+                out_post[at] = post[k]
+            starts[:top + 2] = 0
         a = b
+    return True
 
 
 def transpose_grid(src_len: np.ndarray, tgt_len: np.ndarray, grid_offsets: np.ndarray,

@@ -105,14 +105,39 @@ def test_reverse_grid_is_each_pairs_grid_transposed():
         np.testing.assert_array_equal(got[a:b], want)
 
 
-def test_order_within_rows_is_a_stable_sort_by_column_within_each_row():
+@pytest.mark.parametrize("forward", [True, False])
+def test_links_by_pair_equal_a_lexsort_of_the_links(forward):
+    """Token-major links (as decoders give them) in (pair, source, target) order, against numpy's lexsort;
+    None for links out of token order or repeated (the caller sorts those)."""
     from spark_align.kernels import ragged
 
     rng = np.random.default_rng(12)
-    row = np.sort(rng.integers(0, 30, 2000))
-    col = rng.integers(0, 9, 2000)  # repeats within a row: stability shows
-    np.testing.assert_array_equal(ragged.order_within_rows(row, col), np.lexsort((col, row)))
-    assert len(ragged.order_within_rows(np.zeros(0, np.int64), np.zeros(0, np.int64))) == 0
+    gen_len = rng.integers(0, 7, 40)  # empty pairs too
+    offsets = ragged.offsets_from_lengths(gen_len)
+    token, cond_pos = [], []
+    for t in range(int(offsets[-1])):
+        chosen = np.sort(rng.choice(9, size=rng.integers(0, 4), replace=False))  # 0: the NULL word
+        token += [t] * len(chosen)
+        cond_pos += chosen.tolist()
+    token, cond_pos = np.array(token, np.int64), np.array(cond_pos, np.int64)
+    post = rng.random(len(token))
+    pair = np.searchsorted(offsets, token, side="right") - 1
+    if forward:
+        src_i, tgt_j = cond_pos - 1, token - offsets[pair]
+    else:
+        src_i, tgt_j = token - offsets[pair], cond_pos - 1
+    order = np.lexsort((tgt_j, src_i, pair))
+    got = ragged.links_by_pair(offsets, token, cond_pos, post, forward=forward)
+    for g, want in zip(got, (pair[order], src_i[order], tgt_j[order], post[order])):
+        np.testing.assert_array_equal(g, want)
+    swapped = token.copy()
+    swapped[[3, 40]] = swapped[[40, 3]]
+    assert ragged.links_by_pair(offsets, swapped, cond_pos, post, forward=forward) is None
+    repeated = np.insert(cond_pos, 5, cond_pos[5])
+    assert ragged.links_by_pair(offsets, np.insert(token, 5, token[5]), repeated, np.insert(post, 5, 0.5),
+                                forward=forward) is None
+    assert all(len(a) == 0 for a in ragged.links_by_pair(offsets, token[:0], cond_pos[:0], post[:0],
+                                                         forward=forward))
 
 
 def test_links_at_least_equal_numpy_masks():
