@@ -36,7 +36,7 @@ import pyarrow as pa
 
 from spark_align.engine import faults
 from spark_align.engine.ingest import blocks_from_batch
-from spark_align.engine.tables import DIRS, MIN_PROB
+from spark_align.engine.tables import DIRS, MIN_PROB, keep_freed_memory
 from spark_align.kernels import ragged
 
 STATS_SCHEMA = "dir byte, src int, tgt int, hi long, lo long"
@@ -93,6 +93,7 @@ def make_estep(model, directions: tuple[str, ...], tables_src, dense: dict[str, 
         from spark_align.kernels import lookup
 
         _maybe_fail()
+        keep_freed_memory()
         started = time.perf_counter()
         tables = tables_src.value
         load_seconds = time.perf_counter() - started

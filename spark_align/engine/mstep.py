@@ -34,7 +34,8 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from spark_align.engine.estep import DENSE, HI_SCALE, LO_SCALE, SCALAR, note_task_memory, to_fixed
-from spark_align.engine.tables import BUCKET_META, BUCKETS_META, DIRS, KEYS_META, keys_digest, worker_scratch
+from spark_align.engine.tables import (BUCKET_META, BUCKETS_META, DIRS, KEYS_META, keep_freed_memory, keys_digest,
+                                       worker_scratch)
 from spark_align.kernels import counts
 from spark_align.store import BUCKET_PROTOCOLS
 
@@ -175,6 +176,7 @@ def make_reducer(lex_url: str, n_parts: int, *, min_prob: float, prune_below: fl
     def reduce(index, records):
         import fsspec
 
+        keep_freed_memory()
         started = time.perf_counter()
         buffer = counts.CountBuffer(compact_rows=REDUCER_FOLD_ROWS)
         for _bucket, data in records:

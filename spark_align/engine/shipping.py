@@ -42,7 +42,7 @@ import pyarrow as pa
 from spark_align.config import SHIPPINGS as SHIPPING_MODES
 from spark_align.engine.estep import STATS_SCHEMA, _maybe_fail, block_rows, note_task_memory, rows_batch
 from spark_align.engine.ingest import DICT_ENTRIES_SCHEMA, blocks_from_batch, dict_entries
-from spark_align.engine.tables import DIRS, MIN_PROB
+from spark_align.engine.tables import DIRS, MIN_PROB, keep_freed_memory
 
 BYTES_PER_ENTRY = 48  # per Python worker per entry on the whole-table path (see the module docstring)
 DEFAULT_BUDGET_MB = 768
@@ -111,6 +111,7 @@ def make_join_estep(model, directions: tuple[str, ...], dense: dict[str, dict]):
 
     def estep(block_table: pa.Table, params: pa.Table) -> pa.Table:
         _maybe_fail()
+        keep_freed_memory()
         parts = []
         idx = params.column("idx").to_numpy()
         dirs = params.column("dir").to_numpy()
