@@ -42,6 +42,17 @@ def test_packed_links_unpack_to_the_nested_column():
         output.unpacked_links(pa.array([b"\x00" * 17], pa.binary()))
 
 
+def test_file_shift_keeps_groups_near_the_byte_target_and_under_the_row_cap():
+    # 113 bytes per row on disk (the 1M-pair benchmark corpus): 1,194 estimated, 32,768 rows per file
+    assert output.file_shift(1_000_000, 113_000_000) == 15
+    assert 1 << output.file_shift(1_000, 10 << 30) == 1  # 10 MB rows on disk: one row per file
+    assert 1 << output.file_shift(10 ** 9, 10 ** 9) == output.MAX_FILE_ROWS  # tiny rows: the cap
+    for n_rows, size in ((10 ** 6, 10 ** 8), (5 * 10 ** 6, 3 * 10 ** 9), (123, 456_789)):
+        rows = 1 << output.file_shift(n_rows, size)
+        per_row = output.ROW_BYTES_PER_SNAPSHOT_BYTE * size / n_rows + 64
+        assert rows * per_row <= output.FILE_BYTES < 2 * rows * per_row or rows in (1, output.MAX_FILE_ROWS)
+
+
 @pytest.mark.spark
 def test_arrow_writer_writes_what_spark_writes_in_row_order(spark, tmp_path, monkeypatch):
     """The pyarrow writer (the default) and Spark's writer give the same schema and rows, on a corpus with
