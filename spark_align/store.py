@@ -38,6 +38,18 @@ SPARK_TO_FSSPEC = {"s3a": "s3", "s3n": "s3", "gs": "gcs", "abfss": "abfs", "wasb
 BUCKET_PROTOCOLS = frozenset({"s3", "s3a", "gcs", "gs", "abfs", "az", "abfss", "adl"})
 
 
+def has_directories(fs) -> bool:
+    """Whether ``fs`` (an fsspec filesystem) has directories to create: not an object store."""
+    protocols = fs.protocol if isinstance(fs.protocol, tuple) else (fs.protocol,)
+    return not set(protocols) & BUCKET_PROTOCOLS
+
+
+def ensure_parent(fs, path: str) -> None:
+    """Create the directory ``path`` goes in, where ``fs`` has directories (never a bucket)."""
+    if has_directories(fs):
+        fs.makedirs(posixpath.dirname(path), exist_ok=True)
+
+
 def fsspec_url(url: str) -> str:
     """The fsspec spelling of a Spark/Hadoop URL (``s3a://b/k`` -> ``s3://b/k``)."""
     scheme, sep, rest = url.partition("://")
@@ -69,8 +81,7 @@ class RunStore:
             self.fs, self.root = fsspec.core.url_to_fs(fsspec_url(self.url))
         except (ImportError, ValueError) as exc:
             raise RunDirError(f"run directory {run_dir}: cannot open it ({exc})") from None
-        protocols = self.fs.protocol if isinstance(self.fs.protocol, tuple) else (self.fs.protocol,)
-        self._has_dirs = not (set(protocols) & BUCKET_PROTOCOLS)
+        self._has_dirs = has_directories(self.fs)
         if "://" not in self.url:
             import os
 

@@ -30,7 +30,7 @@ import posixpath
 import uuid
 
 from spark_align.kernels.lookup import StoredHints, decode_hints, encode_hints
-from spark_align.store import BUCKET_PROTOCOLS
+from spark_align.store import ensure_parent
 
 
 def hints_path(root: str, direction: str, blocks_file: str, row_group: int) -> str:
@@ -53,9 +53,7 @@ def write(fs, root: str, direction: str, blocks_file: str, row_group: int, store
     path = hints_path(root, direction, blocks_file, row_group)
     tmp = f"{path}.{uuid.uuid4().hex}.tmp"
     try:
-        protocols = fs.protocol if isinstance(fs.protocol, tuple) else (fs.protocol,)
-        if not set(protocols) & BUCKET_PROTOCOLS:  # object stores need no directories
-            fs.makedirs(posixpath.dirname(path), exist_ok=True)
+        ensure_parent(fs, path)
         with fs.open(tmp, "wb") as fh:
             fh.write(encode_hints(stored))
         fs.mv(tmp, path)

@@ -282,7 +282,7 @@ def make_group_writer(output_url: str):
         import pyarrow.parquet as pq
 
         from spark_align.engine.tables import keep_freed_memory
-        from spark_align.store import BUCKET_PROTOCOLS
+        from spark_align.store import ensure_parent
 
         keep_freed_memory()
         group = key[0].as_py()
@@ -308,9 +308,7 @@ def make_group_writer(output_url: str):
         fs, root = fsspec.core.url_to_fs(output_url)
         name = f"part-{group:012x}.parquet"
         tmp = posixpath.join(root, "_temporary", f"{name}.{uuid.uuid4().hex}")
-        protocols = fs.protocol if isinstance(fs.protocol, tuple) else (fs.protocol,)
-        if not set(protocols) & BUCKET_PROTOCOLS:
-            fs.makedirs(posixpath.dirname(tmp), exist_ok=True)
+        ensure_parent(fs, tmp)
         with fs.open(tmp, "wb") as fh:
             pq.write_table(table, fh, compression="snappy")
         fs.mv(tmp, posixpath.join(root, name))
@@ -361,23 +359,17 @@ def write_output(spark, store: RunStore, decoder, *, checkpoint: str, directions
     store.remove("output")
     with faults.kill_during_write("output-write", ckpt_model, ckpt_iter, store.spark_path("output")):
         if writer == "spark":
-            decoded = decoded.mapInArrow(lambda batches: (unpack_batch(b) for b in batches),
-                                         _nested_schema(decoded.schema))
-            out = snapshot.join(decoded, on=ROW, how="left").join(skipped, on=ROW, how="left").orderBy(ROW)
-            out.write.mode("overwrite").parquet(store.spark_path("output"))
+            out = snapshot.join(_unpacked(decoded), on=ROW, how="left").join(skipped, on=ROW, how="left")
+            out.orderBy(ROW).write.mode("overwrite").parquet(store.spark_path("output"))
         else:
             shift = file_shift(snapshot.count(), sum(store.files("corpus").values()))
             others = decoded.withColumn("skip_reason", F.lit(None).cast("string")).unionByName(
                 skipped, allowMissingColumns=True)
             groups = [frame.withColumn(GROUP, F.shiftright(ROW, shift)).groupBy(GROUP) for frame in (snapshot, others)]
-            written = groups[0].cogroup(groups[1]).applyInArrow(
+            # The snapshot has rows (ingestion refuses an empty corpus), so some group writes a file.
+            groups[0].cogroup(groups[1]).applyInArrow(
                 make_group_writer(fsspec_url(store.spark_path("output"))), "group long, rows long").collect()
             store.remove("output", "_temporary")  # what failed task attempts left
-            if not written:  # no rows at all: one empty file keeps the schema
-                empty = snapshot.join(decoded, on=ROW, how="left").join(skipped, on=ROW, how="left").limit(0)
-                empty.mapInArrow(lambda batches: (unpack_batch(b) for b in batches),
-                                 _nested_schema(empty.schema)).write.mode("overwrite").parquet(
-                    store.spark_path("output"))
     written = spark.read.parquet(store.spark_path("output"))
     counts = written.agg(F.count("*").alias("rows"),
                          F.count("alignment").alias("aligned"),
@@ -395,9 +387,11 @@ def write_output(spark, store: RunStore, decoder, *, checkpoint: str, directions
     return manifest
 
 
-def _nested_schema(schema):
-    """A Spark schema with the packed link columns as the lists of structs they hold."""
+def _unpacked(frame):
+    """``frame`` with its packed link columns as the lists of structs they hold (:func:`unpack_batch`)."""
     from pyspark.sql.types import StructField, StructType, _parse_datatype_string
 
     nested = _parse_datatype_string(LINK_SQL)
-    return StructType([StructField(f.name, nested, True) if f.name in LINK_COLUMNS else f for f in schema.fields])
+    schema = StructType([StructField(f.name, nested, True) if f.name in LINK_COLUMNS else f
+                         for f in frame.schema.fields])
+    return frame.mapInArrow(lambda batches: (unpack_batch(b) for b in batches), schema)
