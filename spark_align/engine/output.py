@@ -115,12 +115,14 @@ def _link_key(pair, src_i, tgt_j) -> np.ndarray:
 
 def mean_posterior(links, dense_fwd, dense_rev) -> np.ndarray:
     """Average of the two directions' posteriors of each link (0 where a direction gives none)."""
-    key = _link_key(*links[:3])
-    total = np.zeros(len(key))
+    total = np.zeros(len(links[0]))
     for dense in (dense_fwd, dense_rev):
-        dkey = _link_key(*dense[:3])
-        order = np.argsort(dkey)
-        total += find(dkey[order], dense[3][order], key, 0.0)[2]
+        merged = ragged.values_at_links(*links[:3], *dense[:4], 0.0)
+        if merged is None:  # not both in link order: search
+            key, dkey = _link_key(*links[:3]), _link_key(*dense[:3])
+            order = np.argsort(dkey)
+            merged = find(dkey[order], dense[3][order], key, 0.0)[2]
+        total += merged
     return total / 2.0
 
 

@@ -140,6 +140,28 @@ def test_links_by_pair_equal_a_lexsort_of_the_links(forward):
                                                          forward=forward))
 
 
+def test_values_at_links_equal_a_dictionary_lookup():
+    """Each link's value in another sorted list of links (0.0 where absent), against a dict; None for a
+    list out of order (the caller searches then)."""
+    from spark_align.kernels import ragged
+
+    rng = np.random.default_rng(3)
+    every = sorted({(int(p), int(s), int(t)) for p, s, t in rng.integers(0, 12, (600, 3))})
+    at = [x for x in every if rng.random() < 0.6]
+    query = [x for x in every if rng.random() < 0.5]
+    values = rng.random(len(at))
+    want = [dict(zip(at, values)).get(x, 0.0) for x in query]
+    cols = [np.array(c, np.int64) for c in zip(*query)]
+    at_cols = [np.array(c, np.int64) for c in zip(*at)]
+    np.testing.assert_array_equal(ragged.values_at_links(*cols, *at_cols, values, 0.0), want)
+    backwards = [c[::-1].copy() for c in at_cols]
+    assert ragged.values_at_links(*cols, *backwards, values[::-1].copy(), 0.0) is None
+    assert ragged.values_at_links(*[c[::-1].copy() for c in cols], *at_cols, values, 0.0) is None
+    assert len(ragged.values_at_links(*[c[:0] for c in cols], *at_cols, values, 0.0)) == 0
+    np.testing.assert_array_equal(ragged.values_at_links(*cols, *[c[:0] for c in at_cols], values[:0], 0.5),
+                                  np.full(len(query), 0.5))
+
+
 def test_links_at_least_equal_numpy_masks():
     from spark_align.kernels import ragged
 
