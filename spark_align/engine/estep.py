@@ -108,7 +108,7 @@ def make_estep(model, directions: tuple[str, ...], tables_src, dense: dict[str, 
         for path, row_group in units:
             looked_up = time.perf_counter()
             stored = {d: hints.read(hints_fs, hints_root, d, path, row_group) for d in hinted}
-            trusted = {d for d in hinted if _exact_for(stored[d], tables[d])}
+            trusted = {d for d in hinted if hints_exact_for(stored[d], tables[d])}
             lookup_seconds += time.perf_counter() - looked_up
             read_started = time.perf_counter()
             blocks = read_blocks(fs, path, row_group, with_keys=trusted != set(directions))
@@ -207,7 +207,7 @@ def read_blocks(fs, path: str, row_group: int, *, with_keys: bool) -> list:
             for _block_id, _rows, block in blocks_from_batch(batch)]
 
 
-def _exact_for(stored, table) -> bool:
+def hints_exact_for(stored, table) -> bool:
     """Whether stored hints can be taken as they are for ``table``: found in the same keys (a known
     keys id) and marking exactly the entries the E-step counts (``engine.hints``)."""
     return (stored is not None and stored.exact and stored.found is not None and bool(table.keys_id)

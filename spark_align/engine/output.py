@@ -154,51 +154,89 @@ ALL_LINKS_THRESHOLD = 1e-4  # posteriors below this count as 0 when directions a
 
 def make_decoder(model, directions: tuple[str, ...], tables_bc, dense: dict, *, method: str,
                  threshold: float, symmetrization: str):
+    """The decoder: ``decode(batches, hints=None, *, packed=False)`` gives the rows of blocks (Arrow
+    batches of ``encoded/blocks`` rows), and ``decode.unit(fs, path, row_group, stored, *, packed)``
+    those of one row group of a blocks file with its stored hints (``stored``: direction ->
+    ``lookup.StoredHints``), taking the positions as they are where the E-step would
+    (``engine.estep.hints_exact_for``): then neither the blocks' dictionary keys (40% of a row group's
+    bytes) are read nor each key checked in the table."""
+
     def decode(batches, hints: dict | None = None, *, packed: bool = False):
         """Decoder rows for blocks (:data:`DECODED_SCHEMA`; ``packed``: :data:`PACKED_SCHEMA`);
         ``hints``: direction -> stored lookup hints of these blocks' dictionaries, concatenated in
         block order (``engine.hints``, a ``lookup.StoredHints``; checked, so never trusted). Hints
         found in other keys than the table's are not used: the table's hash index finds the keys
         faster than checking mostly stale hints first."""
+        blocks = ((rows, block) for batch in batches for _block_id, rows, block in blocks_from_batch(batch))
+        yield from decode_blocks(blocks, hints or {}, {}, packed)
+
+    def decode_unit(fs, path: str, row_group: int, stored: dict, *, packed: bool = False):
+        from spark_align.engine.estep import E_STEP_COLUMNS, hints_exact_for
+        from spark_align.engine.mstep import read_unit
+        from spark_align.engine.tables import MIN_PROB
+        from spark_align.kernels.lookup import gather_found
+
+        tables = tables_bc.value
+        trusted = [d for d in directions if hints_exact_for(stored.get(d), tables[d])]
+        without_keys = ["rows"] + [c for c in E_STEP_COLUMNS if c != "dict_keys"]
+
+        def read(columns):
+            return [(rows, block) for batch in read_unit(fs, path, row_group, columns=columns)
+                    for _block_id, rows, block in blocks_from_batch(batch)]
+
+        blocks = read(without_keys if len(trusted) == len(directions) else None)
+        sizes = [block.n_dict for _rows, block in blocks]
+        found = {d: gather_found(tables[d].probs, stored[d].points, stored[d].found, sizes, MIN_PROB)
+                 for d in trusted}
+        found = {d: probs for d, probs in found.items() if probs is not None}
+        if len(found) < len(directions) and blocks and blocks[0][1].dict_keys is None:
+            blocks = read(None)  # a direction's positions were not what a search gives: searched instead
+        yield from decode_blocks(blocks, stored, found, packed)
+
+    def decode_blocks(blocks, hints: dict, found: dict, packed: bool):
+        # found: direction -> the probabilities of every dictionary key of these blocks, in block order
         column = packed_links if packed else links_column
         tables = tables_bc.value
         offset = 0
-        for batch in batches:
-            for _block_id, rows, block in blocks_from_batch(batch):
-                n = block.n_pairs
-                n_keys = len(block.dict_keys)
-                links, every, scores = {}, {}, {}
-                for direction in directions:
-                    view = block.view(direction)
-                    h = (hints or {}).get(direction)
+        for rows, block in blocks:
+            n = block.n_pairs
+            n_keys = block.n_dict
+            links, every, scores = {}, {}, {}
+            for direction in directions:
+                view = block.view(direction)
+                if direction in found:
+                    t_local = found[direction][offset:offset + n_keys]
+                else:
+                    h = hints.get(direction)
                     h = (h.points[offset:offset + n_keys] if h is not None and offset + n_keys <= len(h.points)
                          and h.keys_id == tables[direction].keys_id else None)
                     t_local = tables[direction].find_hinted(block.dict_keys, h)[1]
-                    chosen, all_links, loglik = decode_all(
-                        model, view, t_local, dense[direction], method=method, threshold=threshold,
-                        every_threshold=ALL_LINKS_THRESHOLD if len(directions) == 2 else None)
-                    links[direction] = directional_links(block, direction, *chosen)
-                    if all_links is not None:
-                        every[direction] = directional_links(block, direction, *all_links)
-                    scores[direction] = loglik / np.maximum(view.gen_len, 1)
-                if len(directions) == 2:
-                    sym = combine(block, links["forward"], links["reverse"], every["forward"], every["reverse"],
-                                  symmetrization, threshold)
-                else:
-                    sym = links[directions[0]]
-                offset += n_keys
-                empty = (np.zeros(0, np.int64),) * 3 + (np.zeros(0),)
-                nan = np.full(n, np.nan)
-                yield pa.RecordBatch.from_arrays([
-                    pa.array(rows),
-                    column(n, *sym),
-                    column(n, *links.get("forward", empty)),
-                    column(n, *links.get("reverse", empty)),
-                    pa.array(scores.get("forward", nan)),
-                    pa.array(scores.get("reverse", nan)),
-                ], names=["_row", "alignment", "alignment_forward", "alignment_reverse",
-                          "score_forward", "score_reverse"])
+                chosen, all_links, loglik = decode_all(
+                    model, view, t_local, dense[direction], method=method, threshold=threshold,
+                    every_threshold=ALL_LINKS_THRESHOLD if len(directions) == 2 else None)
+                links[direction] = directional_links(block, direction, *chosen)
+                if all_links is not None:
+                    every[direction] = directional_links(block, direction, *all_links)
+                scores[direction] = loglik / np.maximum(view.gen_len, 1)
+            if len(directions) == 2:
+                sym = combine(block, links["forward"], links["reverse"], every["forward"], every["reverse"],
+                              symmetrization, threshold)
+            else:
+                sym = links[directions[0]]
+            offset += n_keys
+            empty = (np.zeros(0, np.int64),) * 3 + (np.zeros(0),)
+            nan = np.full(n, np.nan)
+            yield pa.RecordBatch.from_arrays([
+                pa.array(rows),
+                column(n, *sym),
+                column(n, *links.get("forward", empty)),
+                column(n, *links.get("reverse", empty)),
+                pa.array(scores.get("forward", nan)),
+                pa.array(scores.get("reverse", nan)),
+            ], names=["_row", "alignment", "alignment_forward", "alignment_reverse",
+                      "score_forward", "score_reverse"])
 
+    decode.unit = decode_unit
     return decode
 
 
@@ -214,7 +252,6 @@ def decode_units(decoder, blocks_url: str, hints_url: str | None = None, directi
         import fsspec
 
         from spark_align.engine import hints
-        from spark_align.engine.mstep import read_unit
         from spark_align.engine.tables import keep_freed_memory
 
         keep_freed_memory()
@@ -224,8 +261,8 @@ def decode_units(decoder, blocks_url: str, hints_url: str | None = None, directi
             for path, row_group in zip(batch.column(0).to_pylist(), batch.column(1).to_pylist()):
                 stored = {} if hints_fs is None else {
                     d: hints.read(hints_fs, hints_root, d, path, row_group) for d in directions}
-                yield from decoder(read_unit(fs, path, row_group),
-                                   {d: h for d, h in stored.items() if h is not None}, packed=True)
+                yield from decoder.unit(fs, path, row_group, {d: h for d, h in stored.items() if h is not None},
+                                        packed=True)
 
     return decode
 

@@ -187,6 +187,15 @@ def test_stored_lookup_hints_are_checked_and_never_change_results(spark, tmp_pat
     runs = [pa.Table.from_batches(list(decode(mstep.read_unit(fs, path, row_group), h)))
             for h in (None, right, wrong)]
     assert runs[0].num_rows > 0 and runs[0].equals(runs[1]) and runs[0].equals(runs[2])
+    # A row group decoded with its stored positions taken as they are (neither the dictionary keys read
+    # nor each key checked), with wrong ones marked exact (found out, then searched), and without.
+    from spark_align.engine.estep import hints_exact_for
+
+    assert all(hints_exact_for(right[d], source.value[d]) for d in right)
+    wrong_exact = {d: dataclasses.replace(h, exact=True) for d, h in wrong.items()}
+    for h in (right, wrong_exact, {}):
+        got = pa.Table.from_batches(list(decode.unit(fs, path, row_group, h)))
+        assert got.equals(runs[0])
 
 
 def test_parquet_corpus_with_id_and_renamed_columns(spark, tmp_path):
