@@ -24,11 +24,8 @@ from spark_align.kernels.lookup import find
 from spark_align.models.base import decode_all
 from spark_align.store import FORMAT_VERSION, RunStore
 
-LINK_TYPE = pa.list_(pa.struct([("source", pa.int32()), ("target", pa.int32()), ("posterior", pa.float64())]))
 LINK_SQL = "array<struct<source:int,target:int,posterior:double>>"
 LINK_COLUMNS = ("alignment", "alignment_forward", "alignment_reverse")
-DECODED_SCHEMA = (f"_row long, alignment {LINK_SQL}, alignment_forward {LINK_SQL}, "
-                  f"alignment_reverse {LINK_SQL}, score_forward double, score_reverse double")
 # The decoder's rows inside the output pass: each pair's links packed into one binary value (LINK_RECORD
 # per link), which Spark moves through its joins and sort as plain bytes. Nested arrays of structs cost
 # far more there: converting them from Arrow, shuffling them twice and writing them with Spark's
@@ -162,7 +159,8 @@ def make_decoder(model, directions: tuple[str, ...], tables_bc, dense: dict, *, 
     bytes) are read nor each key checked in the table."""
 
     def decode(batches, hints: dict | None = None, *, packed: bool = False):
-        """Decoder rows for blocks (:data:`DECODED_SCHEMA`; ``packed``: :data:`PACKED_SCHEMA`);
+        """Decoder rows for blocks (:data:`PACKED_SCHEMA`, with the link columns as :data:`LINK_SQL`
+        lists unless ``packed``);
         ``hints``: direction -> stored lookup hints of these blocks' dictionaries, concatenated in
         block order (``engine.hints``, a ``lookup.StoredHints``; checked, so never trusted). Hints
         found in other keys than the table's are not used: the table's hash index finds the keys
