@@ -86,7 +86,7 @@ def contiguous_view(view: ragged.View) -> ragged.View:
     return ragged.View(*(np.ascontiguousarray(getattr(view, f), dtype=np.int32 if f == "cells" else np.int64)
                          if f in ("cond_len", "gen_len", "cell_offsets", "cells") else getattr(view, f)
                          for f in ("cond_len", "gen_len", "cell_offsets", "cells", "cond_offsets", "cond_ids",
-                                   "gen_offsets", "gen_ids")))
+                                   "gen_offsets", "gen_ids")))  # cells as the grid: not gen_major
 
 
 def generated_blocks(n_pairs: int, block_size: int, seed: int) -> list[ragged.Block]:

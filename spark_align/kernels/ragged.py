@@ -26,11 +26,14 @@ parameter slice a block needs, so tables can be shipped per block.
 A *view* is a block seen from one direction: ``cond`` is the conditioning side
 (rows, with NULL at row 0) and ``gen`` the generated side (columns 1..m; column
 0 is ignored). The forward direction p(target | source) uses the grid as is;
-the reverse direction p(source | target) uses the transposed grid.
+the reverse direction p(source | target) uses the transposed grid, made when a
+kernel first asks for it: Model 1's E-step reads the stored grid in either
+order and never does.
 """
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import cached_property
 
 import numpy as np
 from numba import njit
@@ -103,23 +106,35 @@ class Block:
             return View(src_len, tgt_len, self.grid_offsets, self.grid,
                         self.src_offsets, self.src_ids, self.tgt_offsets, self.tgt_ids)
         if direction == "reverse":
-            return View(tgt_len, src_len, self.grid_offsets, transpose_grid(src_len, tgt_len, self.grid_offsets, self.grid),
-                        self.tgt_offsets, self.tgt_ids, self.src_offsets, self.src_ids)
+            return View(tgt_len, src_len, self.grid_offsets, self.grid,
+                        self.tgt_offsets, self.tgt_ids, self.src_offsets, self.src_ids, gen_major=True)
         raise ValueError(f"direction must be 'forward' or 'reverse', not {direction!r}")
 
 
 @dataclass(frozen=True)
 class View:
-    """A block from one direction: ``cells`` is row-major (cond_len+1) x (gen_len+1)."""
+    """A block from one direction: ``cells`` is row-major (cond_len+1) x (gen_len+1).
+
+    ``grid`` is the block's grid as stored: ``cells`` itself, or with ``gen_major`` (the reverse
+    direction) row-major (gen_len+1) x (cond_len+1), ``cells`` then being its transpose, made on
+    first use. A kernel that reads cells in either order takes ``grid`` and skips the transpose.
+    """
 
     cond_len: np.ndarray      # int64 (n_pairs,)
     gen_len: np.ndarray       # int64 (n_pairs,)
     cell_offsets: np.ndarray  # int64 (n_pairs + 1,)
-    cells: np.ndarray         # int32 dictionary indices
+    grid: np.ndarray          # int32 dictionary indices
     cond_offsets: np.ndarray
     cond_ids: np.ndarray
     gen_offsets: np.ndarray
     gen_ids: np.ndarray
+    gen_major: bool = False
+
+    @cached_property
+    def cells(self) -> np.ndarray:
+        if not self.gen_major:
+            return self.grid
+        return transpose_grid(self.gen_len, self.cond_len, self.cell_offsets, self.grid)
 
     @property
     def n_pairs(self) -> int:

@@ -105,6 +105,26 @@ def test_reverse_grid_is_each_pairs_grid_transposed():
         np.testing.assert_array_equal(got[a:b], want)
 
 
+
+def test_reverse_e_step_reads_the_stored_grid_and_equals_the_transposed_one():
+    """Model 1's E-step and posteriors read the reverse direction's cells from the grid as stored
+    (gen-major), without transposing it, and give bit for bit what they give on the transposed cells."""
+    import dataclasses
+
+    block = make_block(random_corpus(np.random.default_rng(5), 60, max_len=11, n_src_words=14, n_tgt_words=9))
+    t = np.random.default_rng(6).uniform(0.01, 1.0, size=len(block.dict_keys))
+    view = block.view("reverse")
+    counts, loglik = ibm1.e_step(view, t)
+    _gc, post, per_pair = ibm1.posteriors_and_loglik(view, t)
+    assert view.gen_major and "cells" not in vars(view)  # no transpose made
+    transposed = dataclasses.replace(view, grid=view.cells, gen_major=False)
+    want_counts, want_loglik = ibm1.e_step(transposed, t)
+    assert loglik == want_loglik
+    np.testing.assert_array_equal(counts, want_counts)
+    _gc, want_post, want_per_pair = ibm1.posteriors_and_loglik(transposed, t)
+    np.testing.assert_array_equal(post, want_post)
+    np.testing.assert_array_equal(per_pair, want_per_pair)
+
 @pytest.mark.parametrize("forward", [True, False])
 def test_links_by_pair_equal_a_lexsort_of_the_links(forward):
     """Token-major links (as decoders give them) in (pair, source, target) order, against numpy's lexsort;
