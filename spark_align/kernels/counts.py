@@ -19,7 +19,6 @@ from numba.cpython.unsafe.numbers import leading_zeros
 from spark_align.kernels.prefetch import AHEAD, prefetch
 
 MAX_ID = 2 ** 30 - 2  # ids (and dense indexes) must stay below this
-FIELDS = ("dir", "src", "tgt", "hi", "lo")
 _LOW32 = np.int64(0xFFFFFFFF)
 
 
