@@ -13,6 +13,7 @@ from __future__ import annotations
 import posixpath
 import time
 import uuid
+from dataclasses import dataclass
 
 import numpy as np
 import pyarrow as pa
@@ -150,15 +151,30 @@ ALL_LINKS_THRESHOLD = 1e-4  # posteriors below this count as 0 when directions a
 
 
 def make_decoder(model, directions: tuple[str, ...], tables_bc, dense: dict, *, method: str,
-                 threshold: float, symmetrization: str):
-    """The decoder: ``decode(batches, hints=None, *, packed=False)`` gives the rows of blocks (Arrow
-    batches of ``encoded/blocks`` rows), and ``decode.unit(fs, path, row_group, stored, *, packed)``
-    those of one row group of a blocks file with its stored hints (``stored``: direction ->
+                 threshold: float, symmetrization: str) -> "Decoder":
+    """The decoder of a model with its tables (``tables_bc.value``: direction -> table) and dense
+    parameters; see :class:`Decoder`."""
+    return Decoder(model, tuple(directions), tables_bc, dense, method, threshold, symmetrization)
+
+
+@dataclass(frozen=True, eq=False)
+class Decoder:
+    """Decodes blocks into output rows. ``decoder(batches, hints=None, *, packed=False)`` gives the rows
+    of blocks (Arrow batches of ``encoded/blocks`` rows), and ``decoder.unit(fs, path, row_group, stored,
+    *, packed)`` those of one row group of a blocks file with its stored hints (``stored``: direction ->
     ``lookup.StoredHints``), taking the positions as they are where the E-step would
     (``engine.estep.hints_exact_for``): then neither the blocks' dictionary keys (40% of a row group's
-    bytes) are read nor each key checked in the table."""
+    bytes) are read nor each key checked in the table. Shipped to the tasks that decode."""
 
-    def decode(batches, hints: dict | None = None, *, packed: bool = False):
+    model: object
+    directions: tuple[str, ...]
+    tables_bc: object
+    dense: dict
+    method: str
+    threshold: float
+    symmetrization: str
+
+    def __call__(self, batches, hints: dict | None = None, *, packed: bool = False):
         """Decoder rows for blocks (:data:`PACKED_SCHEMA`, with the link columns as :data:`LINK_SQL`
         lists unless ``packed``);
         ``hints``: direction -> stored lookup hints of these blocks' dictionaries, concatenated in
@@ -166,35 +182,36 @@ def make_decoder(model, directions: tuple[str, ...], tables_bc, dense: dict, *, 
         found in other keys than the table's are not used: the table's hash index finds the keys
         faster than checking mostly stale hints first."""
         blocks = ((rows, block) for batch in batches for _block_id, rows, block in blocks_from_batch(batch))
-        yield from decode_blocks(blocks, hints or {}, {}, packed)
+        yield from self._decode_blocks(blocks, hints or {}, {}, packed)
 
-    def decode_unit(fs, path: str, row_group: int, stored: dict, *, packed: bool = False):
+    def unit(self, fs, path: str, row_group: int, stored: dict, *, packed: bool = False):
         from spark_align.engine.estep import E_STEP_COLUMNS, hints_exact_for
         from spark_align.engine.mstep import read_unit
         from spark_align.engine.tables import MIN_PROB
         from spark_align.kernels.lookup import gather_found
 
-        tables = tables_bc.value
-        trusted = [d for d in directions if hints_exact_for(stored.get(d), tables[d])]
+        tables = self.tables_bc.value
+        trusted = [d for d in self.directions if hints_exact_for(stored.get(d), tables[d])]
         without_keys = ["rows"] + [c for c in E_STEP_COLUMNS if c != "dict_keys"]
 
         def read(columns):
             return [(rows, block) for batch in read_unit(fs, path, row_group, columns=columns)
                     for _block_id, rows, block in blocks_from_batch(batch)]
 
-        blocks = read(without_keys if len(trusted) == len(directions) else None)
+        blocks = read(without_keys if len(trusted) == len(self.directions) else None)
         sizes = [block.n_dict for _rows, block in blocks]
         found = {d: gather_found(tables[d].probs, stored[d].points, stored[d].found, sizes, MIN_PROB)
                  for d in trusted}
         found = {d: probs for d, probs in found.items() if probs is not None}
-        if len(found) < len(directions) and blocks and blocks[0][1].dict_keys is None:
+        if len(found) < len(self.directions) and blocks and blocks[0][1].dict_keys is None:
             blocks = read(None)  # a direction's positions were not what a search gives: searched instead
-        yield from decode_blocks(blocks, stored, found, packed)
+        yield from self._decode_blocks(blocks, stored, found, packed)
 
-    def decode_blocks(blocks, hints: dict, found: dict, packed: bool):
+    def _decode_blocks(self, blocks, hints: dict, found: dict, packed: bool):
         # found: direction -> the probabilities of every dictionary key of these blocks, in block order
+        directions = self.directions
         column = packed_links if packed else links_column
-        tables = tables_bc.value
+        tables = self.tables_bc.value
         offset = 0
         for rows, block in blocks:
             n = block.n_pairs
@@ -210,7 +227,7 @@ def make_decoder(model, directions: tuple[str, ...], tables_bc, dense: dict, *, 
                          and h.keys_id == tables[direction].keys_id else None)
                     t_local = tables[direction].find_hinted(block.dict_keys, h)[1]
                 chosen, all_links, loglik = decode_all(
-                    model, view, t_local, dense[direction], method=method, threshold=threshold,
+                    self.model, view, t_local, self.dense[direction], method=self.method, threshold=self.threshold,
                     every_threshold=ALL_LINKS_THRESHOLD if len(directions) == 2 else None)
                 links[direction] = directional_links(block, direction, *chosen)
                 if all_links is not None:
@@ -218,7 +235,7 @@ def make_decoder(model, directions: tuple[str, ...], tables_bc, dense: dict, *, 
                 scores[direction] = loglik / np.maximum(view.gen_len, 1)
             if len(directions) == 2:
                 sym = combine(block, links["forward"], links["reverse"], every["forward"], every["reverse"],
-                              symmetrization, threshold)
+                              self.symmetrization, self.threshold)
             else:
                 sym = links[directions[0]]
             offset += n_keys
@@ -233,9 +250,6 @@ def make_decoder(model, directions: tuple[str, ...], tables_bc, dense: dict, *, 
                 pa.array(scores.get("reverse", nan)),
             ], names=["_row", "alignment", "alignment_forward", "alignment_reverse",
                       "score_forward", "score_reverse"])
-
-    decode.unit = decode_unit
-    return decode
 
 
 UNITS_PER_CORE = 4  # decoding tasks per core: several, so the cores stay busy to the end
