@@ -148,8 +148,8 @@ def _run(view: View, t, jump, p_null, max_jump, *, backward, counts, stats, post
     loglik = np.zeros(view.n_pairs)
     cond_len, gen_len = np.asarray(view.cond_len, np.int64), np.asarray(view.gen_len, np.int64)
     _forward_backward_compiled(
-        cond_len, gen_len, np.asarray(view.cell_offsets, np.int64), np.asarray(view.cells, np.int32),
-        *_by_cond_length(cond_len, gen_len * (cond_len + 1)), np.asarray(t, np.float64),
+        cond_len, gen_len, np.asarray(view.cell_offsets, np.int64), np.asarray(view.grid, np.int32),
+        bool(view.gen_major), *_by_cond_length(cond_len, gen_len * (cond_len + 1)), np.asarray(t, np.float64),
         np.asarray(jump, np.float64), float(p_null), int(max_jump), CONTEXT_CAP, bool(backward),
         counts, stats, post, loglik)
     return loglik
@@ -164,12 +164,14 @@ def _by_cond_length(cond_len: np.ndarray, out_len: np.ndarray) -> tuple[np.ndarr
 
 
 @njit(cache=True, nogil=True)
-def _forward_backward_compiled(cond_len, gen_len, cell_offsets, cells, order, link_first, t, jump, p0, max_jump,
-                               cap, backward, counts, stats, post, loglik):  # pragma: no cover - compiled
+def _forward_backward_compiled(cond_len, gen_len, cell_offsets, grid, gen_major, order, link_first, t, jump, p0,
+                               max_jump, cap, backward, counts, stats, post, loglik):  # pragma: no cover
     # One pair at a time, as the module docstring describes, in ``order`` (by cond length, so T is
     # computed once per length); every array is a pair-sized scratch buffer reused across pairs. The
     # emissions are gathered once per pair into (m, l) (real) and (m,) (NULL), so the passes below
-    # read them contiguously. ``link_first``: each pair's first link in ``post``.
+    # read them contiguously. ``link_first``: each pair's first link in ``post``. The grid is read
+    # as stored, in either order (``View.grid``): cell (cond i, gen j) is
+    # grid[base + i * cond_step + j * gen_step].
     want_counts, want_stats, want_post = len(counts) > 0, len(stats) > 0, len(post) > 0
     max_l, max_cells, max_m = 1, 1, 1
     for p in range(len(cond_len)):
@@ -188,13 +190,14 @@ def _forward_backward_compiled(cond_len, gen_len, cell_offsets, cells, order, li
         p = order[at]
         link0 = link_first[p]
         l, m = cond_len[p], gen_len[p]
-        w, base = m + 1, cell_offsets[p]
+        base = cell_offsets[p]
+        cond_step, gen_step = (1, l + 1) if gen_major else (m + 1, 1)
         if m == 0:
             continue
         if l == 0:  # no real state: NULL generates every word with probability 1
             ll = 0.0
             for j in range(m):
-                k = cells[base + j + 1]
+                k = grid[base + (j + 1) * gen_step]
                 ll += np.log(t[k])
                 if want_counts:
                     counts[k] += 1.0
@@ -213,9 +216,10 @@ def _forward_backward_compiled(cond_len, gen_len, cell_offsets, cells, order, li
                     trans_t[b, a] = trans[a, b]
             trans_l = l
         for j in range(m):
-            e_null[j] = t[cells[base + j + 1]]
+            col = base + (j + 1) * gen_step
+            e_null[j] = t[grid[col]]
             for i in range(l):
-                e_real[j * l + i] = t[cells[base + (i + 1) * w + j + 1]]
+                e_real[j * l + i] = t[grid[col + (i + 1) * cond_step]]
         # forward, every step rescaled to sum 1
         ll = 0.0
         for j in range(m):
@@ -272,16 +276,17 @@ def _forward_backward_compiled(cond_len, gen_len, cell_offsets, cells, order, li
         # state posteriors: lexical counts and link posteriors
         for j in range(m):
             o = j * l
+            col = base + (j + 1) * gen_step
             null_post = 0.0
             for i in range(l):
                 gamma = ar[o + i] * beta[o + i]
                 null_post += an[o + i] * beta[o + i]
                 if want_counts:
-                    counts[cells[base + (i + 1) * w + j + 1]] += gamma
+                    counts[grid[col + (i + 1) * cond_step]] += gamma
                 if want_post:
                     post[link0 + j * (l + 1) + i + 1] = gamma
             if want_counts:
-                counts[cells[base + j + 1]] += null_post
+                counts[grid[col]] += null_post
             if want_post:
                 post[link0 + j * (l + 1)] = null_post
         if not want_stats:
@@ -321,17 +326,18 @@ def viterbi(view: View, t: np.ndarray, jump: np.ndarray, p_null: float, max_jump
         log_keep = np.log(1.0 - p_null)
     cond_len, gen_len = np.asarray(view.cond_len, np.int64), np.asarray(view.gen_len, np.int64)
     best = np.zeros(int(gen_len.sum()), dtype=np.int64)
-    _viterbi_compiled(cond_len, gen_len, np.asarray(view.cell_offsets, np.int64), np.asarray(view.cells, np.int32),
-                      *_by_cond_length(cond_len, gen_len), np.asarray(t, np.float64), np.asarray(jump, np.float64),
+    _viterbi_compiled(cond_len, gen_len, np.asarray(view.cell_offsets, np.int64), np.asarray(view.grid, np.int32),
+                      bool(view.gen_major), *_by_cond_length(cond_len, gen_len), np.asarray(t, np.float64),
+                      np.asarray(jump, np.float64),
                       float(log_p0), float(log_keep), int(max_jump), best)
     return best
 
 
 @njit(cache=True, nogil=True)
-def _viterbi_compiled(cond_len, gen_len, cell_offsets, cells, order, tok_first, t, jump, log_p0, log_keep,
-                      max_jump, best):  # pragma: no cover - compiled
+def _viterbi_compiled(cond_len, gen_len, cell_offsets, grid, gen_major, order, tok_first, t, jump, log_p0,
+                      log_keep, max_jump, best):  # pragma: no cover - compiled
     # pairs in ``order`` (by cond length: log T computed once per length); ``tok_first``: each pair's
-    # first token in ``best``
+    # first token in ``best``; the grid read as _forward_backward_compiled reads it
     max_l, max_cells = 1, 1
     for p in range(len(cond_len)):
         max_l = max(max_l, cond_len[p])
@@ -346,7 +352,8 @@ def _viterbi_compiled(cond_len, gen_len, cell_offsets, cells, order, tok_first, 
         p = order[at]
         tok0 = tok_first[p]
         l, m = cond_len[p], gen_len[p]
-        w, base = m + 1, cell_offsets[p]
+        base = cell_offsets[p]
+        cond_step, gen_step = (1, l + 1) if gen_major else (m + 1, 1)
         if l == 0 or m == 0:  # no real state: every token stays NULL (0)
             continue
         if l != trans_l:
@@ -358,14 +365,16 @@ def _viterbi_compiled(cond_len, gen_len, cell_offsets, cells, order, tok_first, 
                     log_t[a, b] = np.log(jump[min(max(b - a, -max_jump), max_jump) + max_jump] / z) + log_keep
             trans_l = l
         init_real, init_null = log_keep - np.log(l), log_p0 - np.log(l)
+        col = base + gen_step
         for i in range(l):
-            d_real[i] = np.log(t[cells[base + (i + 1) * w + 1]]) + init_real
-            d_null[i] = np.log(t[cells[base + 1]]) + init_null
+            d_real[i] = np.log(t[grid[col + (i + 1) * cond_step]]) + init_real
+            d_null[i] = np.log(t[grid[col]]) + init_null
         for j in range(1, m):
             o, q = j * l, (j - 1) * l
             for a in range(l):
                 u[a] = max(d_real[q + a], d_null[q + a])
-            e_null = np.log(t[cells[base + j + 1]])
+            col = base + (j + 1) * gen_step
+            e_null = np.log(t[grid[col]])
             # best memory of each real state: the first a with the largest u(a) + log T(a, i), found with
             # a in the outer loop (the same comparisons in the same order) so that the inner loop over
             # i vectorises
@@ -381,7 +390,7 @@ def _viterbi_compiled(cond_len, gen_len, cell_offsets, cells, order, tok_first, 
                         best_a[i] = a
             for i in range(l):
                 back[o + i] = best_a[i]
-                d_real[o + i] = best_v[i] + np.log(t[cells[base + (i + 1) * w + j + 1]])
+                d_real[o + i] = best_v[i] + np.log(t[grid[col + (i + 1) * cond_step]])
                 d_null[o + i] = u[i] + log_p0 + e_null
         # the best final state: real states first, so a tie goes to the real one
         o = (m - 1) * l

@@ -98,6 +98,27 @@ def test_forward_backward_matches_enumeration(seed, direction):
     assert np.allclose(counts, np.bincount(view.cells[gc.flat], weights=post, minlength=len(t)))
 
 
+
+def test_reverse_direction_reads_the_stored_grid_and_equals_the_transposed_one():
+    """The HMM's passes read the reverse direction's cells from the grid as stored (gen-major), without
+    transposing it, and give bit for bit what they give on the transposed cells (empty sides included)."""
+    import dataclasses
+
+    rng = np.random.default_rng(12)
+    pairs = random_corpus(rng, 50, max_len=8, n_src_words=10, n_tgt_words=9) + [([], [1, 2]), ([3], [])]
+    block = make_block(pairs)
+    t = rng.uniform(0.01, 1.0, size=len(block.dict_keys))
+    jump = rng.uniform(0.1, 1.0, size=hmm.n_buckets(3))
+    view = block.view("reverse")
+    got = (hmm.forward_backward(view, t, jump, 0.2, 3)[1:], hmm.viterbi(view, t, jump, 0.2, 3),
+           hmm.e_step(view, t, jump, 0.2, 3))
+    assert view.gen_major and "cells" not in vars(view)  # no transpose made
+    transposed = dataclasses.replace(view, grid=view.cells, gen_major=False)
+    want = (hmm.forward_backward(transposed, t, jump, 0.2, 3)[1:], hmm.viterbi(transposed, t, jump, 0.2, 3),
+            hmm.e_step(transposed, t, jump, 0.2, 3))
+    for a, b in zip([*got[0], got[1], *got[2]], [*want[0], want[1], *want[2]]):
+        np.testing.assert_array_equal(a, b)
+
 def test_a_block_equals_its_pairs_one_at_a_time():
     rng = np.random.default_rng(11)
     pairs = random_corpus(rng, 40, max_len=9, n_src_words=12, n_tgt_words=12)
