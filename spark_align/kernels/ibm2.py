@@ -183,8 +183,10 @@ def e_step(view: View, t: np.ndarray, table: np.ndarray, cap: int,
 
 
 def _view_arrays(view: View):
+    # the grid as stored, in either order (``View.grid``): the E-steps step through it, so the reverse
+    # direction needs no transpose
     return (np.asarray(view.cond_len, np.int64), np.asarray(view.gen_len, np.int64),
-            np.asarray(view.cell_offsets, np.int64), np.asarray(view.cells, np.int32))
+            np.asarray(view.cell_offsets, np.int64), np.asarray(view.grid, np.int32), bool(view.gen_major))
 
 
 @njit(cache=True, nogil=True, inline="always")
@@ -193,10 +195,11 @@ def _bin(pos, length, cap):  # pragma: no cover - compiled; position_bin for one
 
 
 @njit(cache=True, nogil=True)
-def _e_step_compiled(cond_len, gen_len, cell_offsets, cells, t, table, offsets, cap, counts,
+def _e_step_compiled(cond_len, gen_len, cell_offsets, grid, gen_major, t, table, offsets, cap, counts,
                      table_counts):  # pragma: no cover - compiled
     # Model 1's loop with t(f_j|e_i) times a(i|j,l,m) = table[entry] / bin size; the same operations in
-    # the same order as the numpy rendering (posteriors, then bincounts in link order).
+    # the same order as the numpy rendering (posteriors, then bincounts in link order). Cell (cond i,
+    # gen j) is grid[base + i * cond_step + j * gen_step].
     max_l = 1
     for p in range(len(cond_len)):
         max_l = max(max_l, cond_len[p])
@@ -206,7 +209,8 @@ def _e_step_compiled(cond_len, gen_len, cell_offsets, cells, t, table, offsets, 
     loglik = 0.0
     for p in range(len(cond_len)):
         l, m = cond_len[p], gen_len[p]
-        width, base = m + 1, cell_offsets[p]
+        base = cell_offsets[p]
+        cond_step, gen_step = (1, l + 1) if gen_major else (m + 1, 1)
         lc, mc = min(l, cap), min(m, cap)
         for i in range(1, l + 1):
             if l > cap:
@@ -216,15 +220,16 @@ def _e_step_compiled(cond_len, gen_len, cell_offsets, cells, t, table, offsets, 
                 size[i] = 1
         for j in range(1, m + 1):
             row = offsets[lc, mc] + (_bin(j, m, cap) - 1) * (lc + 1)
+            col = base + j * gen_step
             denom = 0.0
             for i in range(l + 1):
                 e = row + (_bin(i, l, cap) if i > 0 else 0)
                 entry[i] = e
-                score[i] = t[cells[base + i * width + j]] * (table[e] / size[i])
+                score[i] = t[grid[col + i * cond_step]] * (table[e] / size[i])
                 denom += score[i]
             for i in range(l + 1):
                 post = score[i] / denom
-                counts[cells[base + i * width + j]] += post
+                counts[grid[col + i * cond_step]] += post
                 table_counts[entry[i]] += post
             loglik += np.log(denom)
     return loglik
@@ -301,9 +306,10 @@ def diag_e_step(view: View, t: np.ndarray, p_null: float, lam: float, cap: int,
 
 
 @njit(cache=True, nogil=True)
-def _diag_e_step_compiled(cond_len, gen_len, cell_offsets, cells, t, p_null, lam, cap, counts, mass,
+def _diag_e_step_compiled(cond_len, gen_len, cell_offsets, grid, gen_major, t, p_null, lam, cap, counts, mass,
                           out):  # pragma: no cover - compiled
-    # a(i|j,l,m) as in diag_align_probs, per token: p0 for NULL, (1 - p0) exp(lam h) / Z for real i.
+    # a(i|j,l,m) as in diag_align_probs, per token: p0 for NULL, (1 - p0) exp(lam h) / Z for real i; the
+    # grid read as _e_step_compiled reads it.
     max_l = 1
     for p in range(len(cond_len)):
         max_l = max(max_l, cond_len[p])
@@ -315,24 +321,26 @@ def _diag_e_step_compiled(cond_len, gen_len, cell_offsets, cells, t, p_null, lam
     loglik = 0.0
     for p in range(len(cond_len)):
         l, m = cond_len[p], gen_len[p]
-        width, base = m + 1, cell_offsets[p]
+        base = cell_offsets[p]
+        cond_step, gen_step = (1, l + 1) if gen_major else (m + 1, 1)
         lc, mc = min(l, cap), min(m, cap)
         for j in range(1, m + 1):
+            col = base + j * gen_step
             z = 0.0
             for i in range(1, l + 1):
                 h[i] = -abs(i / l - j / m)
                 w[i] = np.exp(lam * h[i])
                 z += w[i]
             denom = 0.0
-            score[0] = t[cells[base + j]] * (1.0 if l == 0 else p_null)
+            score[0] = t[grid[col]] * (1.0 if l == 0 else p_null)
             denom += score[0]
             for i in range(1, l + 1):
-                score[i] = t[cells[base + i * width + j]] * ((1.0 - p_null) * w[i] / z)
+                score[i] = t[grid[col + i * cond_step]] * ((1.0 - p_null) * w[i] / z)
                 denom += score[i]
             real = 0.0
             for i in range(l + 1):
                 post = score[i] / denom
-                counts[cells[base + i * width + j]] += post
+                counts[grid[col + i * cond_step]] += post
                 if i > 0:
                     feature += post * h[i]
                     real += post

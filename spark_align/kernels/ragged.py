@@ -27,8 +27,8 @@ A *view* is a block seen from one direction: ``cond`` is the conditioning side
 (rows, with NULL at row 0) and ``gen`` the generated side (columns 1..m; column
 0 is ignored). The forward direction p(target | source) uses the grid as is;
 the reverse direction p(source | target) uses the transposed grid, made when a
-kernel first asks for it: Model 1's and the HMM's kernels read the stored grid
-in either order and never do.
+kernel first asks for it. Every model's E-step, and Model 1's and the HMM's
+decoding, read the stored grid in either order and never do.
 """
 from __future__ import annotations
 
