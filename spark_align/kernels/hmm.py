@@ -116,7 +116,7 @@ def forward_backward(view: View, t: np.ndarray, jump: np.ndarray, p_null: float,
     (stats_size(max_jump),); ``loglik`` float64 (n_pairs,).
     """
     gc = gc if gc is not None else view.gen_cells()
-    post = np.empty(len(gc.flat))
+    post = np.empty(gc.n_links)
     stats = np.zeros(stats_size(max_jump))
     loglik = _run(view, t, jump, p_null, max_jump, backward=True, counts=np.zeros(0),
                   stats=stats if want_stats else np.zeros(0), post=post)

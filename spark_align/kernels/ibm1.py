@@ -79,7 +79,7 @@ def posteriors_and_loglik(view: View, t: np.ndarray, gc: GenCells | None = None
     denominator). 32,768 pairs decoded in one process: 0.27 s for the numpy formulas (a gather per
     link, bincounts) against a few hundredths."""
     gc = gc if gc is not None else view.gen_cells()
-    post, per_pair = np.empty(len(gc.flat)), np.empty(view.n_pairs)
+    post, per_pair = np.empty(gc.n_links), np.empty(view.n_pairs)
     _posteriors_compiled(np.asarray(view.cond_len, np.int64), np.asarray(view.gen_len, np.int64),
                          np.asarray(view.cell_offsets, np.int64), np.asarray(view.grid, np.int32),
                          bool(view.gen_major), np.asarray(t, np.float64), post, per_pair)
@@ -111,27 +111,31 @@ def _posteriors_compiled(cond_len, gen_len, cell_offsets, grid, gen_major, t, po
 
 
 def argmax_per_token(gc: GenCells, score: np.ndarray) -> np.ndarray:
-    """Best cond position (0 = NULL) of each token; ties go to the later position."""
+    """Best cond position (0 = NULL) of each token (``score``: one per link of ``gc``, in its order);
+    ties go to the later position."""
+    score = np.ascontiguousarray(score, np.float64)
+    if len(score) != gc.n_links:
+        raise ValueError(f"{len(score)} scores for {gc.n_links} links")
     best = np.zeros(gc.n_tokens, dtype=np.int64)
-    _argmax_compiled(np.asarray(gc.token, np.int64), np.asarray(gc.cond_pos, np.int64),
-                     np.asarray(score, np.float64), best)
+    _argmax_compiled(gc.cond_len, gc.gen_len, score, best)
     return best
 
 
 @njit(cache=True, nogil=True)
-def _argmax_compiled(token, cond_pos, score, best):  # pragma: no cover
-    # links of a token are consecutive, cond positions ascending: >= keeps the later of equal scores
-    n = len(token)
-    i = 0
-    while i < n:
-        tok = token[i]
-        top, arg = score[i], cond_pos[i]
-        i += 1
-        while i < n and token[i] == tok:
-            if score[i] >= top:
-                top, arg = score[i], cond_pos[i]
-            i += 1
-        best[tok] = arg
+def _argmax_compiled(cond_len, gen_len, score, best):  # pragma: no cover
+    # a token's links are consecutive, cond positions 0..l: >= keeps the later of equal scores
+    k = 0
+    token = 0
+    for p in range(len(gen_len)):
+        rows = cond_len[p] + 1
+        for _j in range(gen_len[p]):
+            top, arg = score[k], 0
+            for i in range(1, rows):
+                if score[k + i] >= top:
+                    top, arg = score[k + i], i
+            best[token] = arg
+            k += rows
+            token += 1
 
 
 def viterbi(view: View, t: np.ndarray, gc: GenCells | None = None) -> tuple[np.ndarray, np.ndarray]:
@@ -143,5 +147,4 @@ def viterbi(view: View, t: np.ndarray, gc: GenCells | None = None) -> tuple[np.n
     """
     gc, post = posteriors(view, t, gc)
     best = argmax_per_token(gc, post)
-    link_offsets = np.flatnonzero(np.r_[True, gc.token[1:] != gc.token[:-1]]) if gc.n_tokens else np.zeros(0, np.int64)
-    return best, post[link_offsets + best] if gc.n_tokens else np.zeros(0)
+    return best, post[gc.token_starts + best]

@@ -145,32 +145,57 @@ class View:
         return gen_cells(self.cond_len, self.gen_len, self.cell_offsets)
 
 
-@dataclass(frozen=True)
 class GenCells:
-    """Flat description of every (gen token, cond position) link of a view.
+    """Every (gen token, cond position) link of a view, token-major: every generated token in pair
+    order, then cond positions 0..l (0 = NULL), so token ``k``'s link at position ``i`` is link
+    ``token_starts[k] + i``.
 
-    ``flat``: int64 (n_links,) index into ``cells``; ``token``: int64 (n_links,)
-    index of the generated token (0..n_gen_tokens-1, in pair order);
-    ``cond_pos``: int64 (n_links,) row 0..l (0 = NULL); links are ordered by
-    token, then by cond_pos.
+    Kernels that walk links in this order need only the view's lengths (``cond_len``, ``gen_len``):
+    per-token argmax, links above a threshold. The per-link index arrays are made on first use, in
+    one compiled pass: ``flat`` int64 (n_links,) index into the view's ``cells``, ``token`` int64
+    (n_links,) index of the generated token, ``cond_pos`` int64 (n_links,) the row 0..l. Model 1's
+    and the HMM's decoding never make them (a fifth of their posteriors, argmax and selection).
     """
 
-    flat: np.ndarray
-    token: np.ndarray
-    cond_pos: np.ndarray
-    n_tokens: int
+    def __init__(self, cond_len: np.ndarray, gen_len: np.ndarray, cell_offsets: np.ndarray) -> None:
+        self.cond_len = np.ascontiguousarray(cond_len, np.int64)
+        self.gen_len = np.ascontiguousarray(gen_len, np.int64)
+        self.cell_offsets = np.ascontiguousarray(cell_offsets, np.int64)
+        self.n_tokens = int(self.gen_len.sum())
+        self.n_links = int((self.gen_len * (self.cond_len + 1)).sum())
+
+    @cached_property
+    def token_starts(self) -> np.ndarray:
+        """Each generated token's first link, int64 (n_tokens,)."""
+        rows = np.repeat(self.cond_len + 1, self.gen_len)
+        starts = np.zeros(len(rows), np.int64)
+        np.cumsum(rows[:-1], out=starts[1:])
+        return starts
+
+    @cached_property
+    def _arrays(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        flat, token, cond_pos = (np.empty(self.n_links, np.int64) for _ in range(3))
+        _gen_cells(self.cond_len, self.gen_len, self.cell_offsets, flat, token, cond_pos)
+        return flat, token, cond_pos
+
+    @property
+    def flat(self) -> np.ndarray:
+        return self._arrays[0]
+
+    @property
+    def token(self) -> np.ndarray:
+        return self._arrays[1]
+
+    @property
+    def cond_pos(self) -> np.ndarray:
+        return self._arrays[2]
 
 
 def gen_cells(cond_len: np.ndarray, gen_len: np.ndarray, cell_offsets: np.ndarray) -> GenCells:
-    """Enumerate links token-major: every generated token in pair order, then cond positions 0..l.
-
-    One compiled pass: the numpy version, built from repeats and gathers over link-sized arrays, took
-    0.22 s against 0.047 s for 16k pairs, and a seventh of the output pass's decoding."""
-    cond_len, gen_len = np.asarray(cond_len, np.int64), np.asarray(gen_len, np.int64)
-    n_links = int((gen_len * (cond_len + 1)).sum())
-    flat, token, cond_pos = (np.empty(n_links, np.int64) for _ in range(3))
-    n_tokens = _gen_cells(cond_len, gen_len, np.asarray(cell_offsets, np.int64), flat, token, cond_pos)
-    return GenCells(flat=flat, token=token, cond_pos=cond_pos, n_tokens=int(n_tokens))
+    """The links of a view (:class:`GenCells`). Its index arrays come from one compiled pass: the numpy
+    version, built from repeats and gathers over link-sized arrays, took 0.22 s against 0.047 s for
+    16k pairs, and a seventh of the output pass's decoding."""
+    return GenCells(cond_len, gen_len, cell_offsets)
 
 
 @njit(cache=True, nogil=True)
@@ -192,29 +217,36 @@ def _gen_cells(cond_len, gen_len, cell_offsets, flat, token, cond_pos):  # pragm
     return t
 
 
-def links_at_least(token: np.ndarray, cond_pos: np.ndarray, post: np.ndarray,
-                   threshold: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(token, cond_pos, post) of the links whose posterior reaches ``threshold``, NULL (cond_pos 0)
-    left out, in their order: two compiled passes (count, copy) instead of numpy's masks and masked
-    copies."""
-    token, cond_pos = np.ascontiguousarray(token, np.int64), np.ascontiguousarray(cond_pos, np.int64)
+def links_at_least(gc: GenCells, post: np.ndarray, threshold: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(token, cond_pos, post) of the links of ``gc`` whose posterior (``post``, one per link in
+    ``gc``'s order) reaches ``threshold``, NULL (cond_pos 0) left out, in their order: two compiled
+    passes over the view's lengths (count, copy), with no per-link index arrays."""
     post = np.ascontiguousarray(post, np.float64)
-    m = _links_at_least(token, cond_pos, post, float(threshold), None)
+    if len(post) != gc.n_links:
+        raise ValueError(f"{len(post)} posteriors for {gc.n_links} links")
+    m = _links_at_least(gc.cond_len, gc.gen_len, post, float(threshold), None)
     out = (np.empty(m, np.int64), np.empty(m, np.int64), np.empty(m, np.float64))
-    _links_at_least(token, cond_pos, post, float(threshold), out)
+    _links_at_least(gc.cond_len, gc.gen_len, post, float(threshold), out)
     return out
 
 
 @njit(cache=True, nogil=True)
-def _links_at_least(token, cond_pos, post, threshold, out):  # pragma: no cover
+def _links_at_least(cond_len, gen_len, post, threshold, out):  # pragma: no cover
+    k = 0  # the token's first link
+    token = 0
     m = 0
-    for k in range(len(token)):
-        if post[k] >= threshold and cond_pos[k] > 0:
-            if out is not None:
-                out[0][m] = token[k]
-                out[1][m] = cond_pos[k]
-                out[2][m] = post[k]
-            m += 1
+    for p in range(len(gen_len)):
+        rows = cond_len[p] + 1
+        for _j in range(gen_len[p]):
+            for i in range(1, rows):
+                if post[k + i] >= threshold:
+                    if out is not None:
+                        out[0][m] = token
+                        out[1][m] = i
+                        out[2][m] = post[k + i]
+                    m += 1
+            k += rows
+            token += 1
     return m
 
 

@@ -63,45 +63,42 @@ class AlignmentModel(Protocol):
         per-pair log-likelihood when the pass yields it for free, else None)."""
 
 
-def select_links(token: np.ndarray, cond_pos: np.ndarray, post: np.ndarray, best_pos: np.ndarray,
+def select_links(gc: GenCells, post: np.ndarray, best_pos: np.ndarray,
                  *, method: str, threshold: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Pick links from token-major link posteriors (shared by models whose links are listed per token).
+    """Pick links from token-major link posteriors (``post``: one per link of ``gc``), shared by every
+    model: each lists its links per token.
 
     ``best_pos`` is the Viterbi position per token (0 = NULL). Returns
     (token, cond_pos, posterior) of the chosen non-NULL links.
     """
     if method == "viterbi":
-        keep = (cond_pos == best_pos[token]) & (cond_pos > 0)
+        keep = (gc.cond_pos == best_pos[gc.token]) & (gc.cond_pos > 0)
     elif method == "posterior":
-        return links_at_least(token, cond_pos, post, threshold)
+        return links_at_least(gc, post, threshold)
     else:
         raise ValueError(f"decoding method must be 'viterbi' or 'posterior', not {method!r}")
-    return token[keep], cond_pos[keep], post[keep]
+    return gc.token[keep], gc.cond_pos[keep], post[keep]
 
 
-def viterbi_links(view: View, post: np.ndarray, best_pos: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """``select_links(..., method="viterbi")`` in time per token, not per link: the links of
-    :meth:`View.gen_cells` are listed token by token with every cond position 0..l, so token ``k``'s
-    link at position ``i`` is number ``start[k] + i`` (a sixth of decoding a block's pairs went to the
-    per-link selection)."""
-    rows = np.repeat(np.asarray(view.cond_len, np.int64) + 1, np.asarray(view.gen_len, np.int64))
-    start = np.zeros(len(rows), np.int64)
-    np.cumsum(rows[:-1], out=start[1:])
+def viterbi_links(gc: GenCells, post: np.ndarray, best_pos: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """``select_links(..., method="viterbi")`` in time per token, not per link: token ``k``'s link at
+    position ``i`` is number ``gc.token_starts[k] + i`` (a sixth of decoding a block's pairs went to
+    the per-link selection)."""
     token = np.flatnonzero(best_pos > 0)
     cond = np.asarray(best_pos, np.int64)[token]
-    return token, cond, post[start[token] + cond]
+    return token, cond, post[gc.token_starts[token] + cond]
 
 
-def _chosen(gc, view: View, post, best, *, method: str, threshold: float):
+def _chosen(gc: GenCells, post, best, *, method: str, threshold: float):
     if method == "viterbi":
-        return viterbi_links(view, post, best)
-    return select_links(gc.token, gc.cond_pos, post, best, method=method, threshold=threshold)
+        return viterbi_links(gc, post, best)
+    return select_links(gc, post, best, method=method, threshold=threshold)
 
 
 def decode(model, view: View, t: np.ndarray, dense: Dense, *, method: str, threshold: float):
     """:meth:`AlignmentModel.decode` for a model that implements :meth:`~AlignmentModel.decode_pass`."""
     gc, post, best, _ = model.decode_pass(view, t, dense, method=method)
-    return _chosen(gc, view, post, best, method=method, threshold=threshold)
+    return _chosen(gc, post, best, method=method, threshold=threshold)
 
 
 def decode_all(model, view: View, t: np.ndarray, dense: Dense, *, method: str, threshold: float,
@@ -113,7 +110,6 @@ def decode_all(model, view: View, t: np.ndarray, dense: Dense, *, method: str, t
     Decoding, posterior listing and scoring separately ran the model three times per view (three
     forward-backward passes for the HMM)."""
     gc, post, best, loglik = model.decode_pass(view, t, dense, method=method)
-    chosen = _chosen(gc, view, post, best, method=method, threshold=threshold)
-    every = None if every_threshold is None else select_links(gc.token, gc.cond_pos, post, best,
-                                                              method="posterior", threshold=every_threshold)
+    chosen = _chosen(gc, post, best, method=method, threshold=threshold)
+    every = None if every_threshold is None else links_at_least(gc, post, every_threshold)
     return chosen, every, (model.pair_loglik(view, t, dense) if loglik is None else loglik)

@@ -267,7 +267,7 @@ def test_viterbi_links_pick_what_the_per_link_selection_picks(model_name):
         view = block.view(direction)
         gc, post, best, _ = model.decode_pass(view, run.t, run.dense, method="viterbi")
         assert (best > 0).any()
-        want = base.select_links(gc.token, gc.cond_pos, post, best, method="viterbi", threshold=0.5)
-        got = base.viterbi_links(view, post, best)
+        want = base.select_links(gc, post, best, method="viterbi", threshold=0.5)
+        got = base.viterbi_links(gc, post, best)
         for a, b in zip(got, want):
             np.testing.assert_array_equal(a, b)

@@ -182,16 +182,29 @@ def test_values_at_links_equal_a_dictionary_lookup():
                                   np.full(len(query), 0.5))
 
 
-def test_links_at_least_equal_numpy_masks():
+def test_links_at_least_and_argmax_equal_numpy_over_the_link_arrays():
+    """The two kernels that walk a view's links from its lengths alone (no per-link index arrays) give
+    what numpy gives over the links' token and cond position arrays (pairs with empty sides included)."""
     from spark_align.kernels import ragged
 
     rng = np.random.default_rng(13)
-    token, cond_pos, post = np.repeat(np.arange(500), 6), np.tile(np.arange(6), 500), rng.random(3000)
+    cond_len, gen_len = rng.integers(0, 7, 200), rng.integers(0, 7, 200)
+    gc = ragged.gen_cells(cond_len, gen_len, ragged.offsets_from_lengths((cond_len + 1) * (gen_len + 1)))
+    post = rng.random(gc.n_links)
     post[::7] = 0.25                                             # exactly at the threshold: kept
-    keep = (post >= 0.25) & (cond_pos > 0)
-    for a, b in zip(ragged.links_at_least(token, cond_pos, post, 0.25), (token[keep], cond_pos[keep], post[keep])):
+    keep = (post >= 0.25) & (gc.cond_pos > 0)
+    want = (gc.token[keep], gc.cond_pos[keep], post[keep])
+    for a, b in zip(ragged.links_at_least(gc, post, 0.25), want):
         np.testing.assert_array_equal(a, b)
         assert a.dtype == b.dtype
+    score = rng.integers(0, 3, gc.n_links).astype(np.float64)  # many ties: the later position wins
+    want_best = np.zeros(gc.n_tokens, np.int64)
+    for k in range(gc.n_links):
+        if score[k] >= score[gc.token_starts[gc.token[k]] + want_best[gc.token[k]]]:
+            want_best[gc.token[k]] = gc.cond_pos[k]
+    np.testing.assert_array_equal(ibm1.argmax_per_token(gc, score), want_best)
+    with pytest.raises(ValueError, match="links"):
+        ragged.links_at_least(gc, post[1:], 0.25)
 
 
 def test_gen_cells_enumerates_links_token_major():
