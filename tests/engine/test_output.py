@@ -105,3 +105,11 @@ def test_arrow_writer_writes_what_spark_writes_in_row_order(spark, tmp_path, mon
     in_order = pa.concat_tables([pq.read_table(os.path.join(runs["arrow"], "output", f)) for f in files])
     assert in_order.column("_row").to_pylist() == sorted(in_order.column("_row").to_pylist())
     assert not os.path.exists(os.path.join(runs["arrow"], "output", "_temporary"))
+    # the engine's unique-valued columns are written without a dictionary, the corpus's and the link
+    # positions with one (output.dictionary_columns)
+    meta = pq.read_metadata(os.path.join(runs["arrow"], "output", files[0])).row_group(0)
+    chunks = {meta.column(i).path_in_schema: meta.column(i) for i in range(meta.num_columns)}
+    dictionary = {path for path, c in chunks.items() if c.dictionary_page_offset is not None}
+    assert {"source", "tags.list.element", "alignment.list.element.source"} <= dictionary
+    assert not dictionary & {"_row", "score_forward", "alignment.list.element.posterior",
+                             "alignment_reverse.list.element.posterior"}
