@@ -42,7 +42,7 @@ import numpy as np
 from numba import njit
 
 from spark_align.kernels.ibm1 import argmax_per_token
-from spark_align.kernels.ragged import GenCells, View, offsets_from_lengths
+from spark_align.kernels.ragged import GenCells, View, grid_steps, offsets_from_lengths
 
 MIN_PROB = 1e-12
 CONTEXT_CAP = 50
@@ -170,8 +170,7 @@ def _forward_backward_compiled(cond_len, gen_len, cell_offsets, grid, gen_major,
     # computed once per length); every array is a pair-sized scratch buffer reused across pairs. The
     # emissions are gathered once per pair into (m, l) (real) and (m,) (NULL), so the passes below
     # read them contiguously. ``link_first``: each pair's first link in ``post``. The grid is read
-    # as stored, in either order (``View.grid``): cell (cond i, gen j) is
-    # grid[base + i * cond_step + j * gen_step].
+    # as stored, in either order (``View.grid``, ``ragged.grid_steps``).
     want_counts, want_stats, want_post = len(counts) > 0, len(stats) > 0, len(post) > 0
     max_l, max_cells, max_m = 1, 1, 1
     for p in range(len(cond_len)):
@@ -191,7 +190,7 @@ def _forward_backward_compiled(cond_len, gen_len, cell_offsets, grid, gen_major,
         link0 = link_first[p]
         l, m = cond_len[p], gen_len[p]
         base = cell_offsets[p]
-        cond_step, gen_step = (1, l + 1) if gen_major else (m + 1, 1)
+        cond_step, gen_step = grid_steps(l, m, gen_major)
         if m == 0:
             continue
         if l == 0:  # no real state: NULL generates every word with probability 1
@@ -353,7 +352,7 @@ def _viterbi_compiled(cond_len, gen_len, cell_offsets, grid, gen_major, order, t
         tok0 = tok_first[p]
         l, m = cond_len[p], gen_len[p]
         base = cell_offsets[p]
-        cond_step, gen_step = (1, l + 1) if gen_major else (m + 1, 1)
+        cond_step, gen_step = grid_steps(l, m, gen_major)
         if l == 0 or m == 0:  # no real state: every token stays NULL (0)
             continue
         if l != trans_l:

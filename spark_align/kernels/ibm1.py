@@ -20,7 +20,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-from spark_align.kernels.ragged import GenCells, View
+from spark_align.kernels.ragged import GenCells, View, grid_steps
 
 
 def e_step(view: View, t: np.ndarray) -> tuple[np.ndarray, float]:
@@ -45,8 +45,7 @@ def _e_step_compiled(cond_len, gen_len, cell_offsets, grid, gen_major, t, counts
     loglik = 0.0
     for p in range(len(cond_len)):
         n_rows, m = cond_len[p] + 1, gen_len[p]
-        # cell (cond i, gen j) = grid[base + j * gen_step + i * cond_step]
-        cond_step, gen_step = (1, n_rows) if gen_major else (m + 1, 1)
+        cond_step, gen_step = grid_steps(cond_len[p], m, gen_major)
         base = cell_offsets[p]
         for j in range(1, m + 1):
             row = base + j * gen_step
@@ -93,7 +92,7 @@ def _posteriors_compiled(cond_len, gen_len, cell_offsets, grid, gen_major, t, po
     k = 0
     for p in range(len(cond_len)):
         n_rows, m = cond_len[p] + 1, gen_len[p]
-        cond_step, gen_step = (1, n_rows) if gen_major else (m + 1, 1)
+        cond_step, gen_step = grid_steps(cond_len[p], m, gen_major)
         base = cell_offsets[p]
         ll = 0.0
         for j in range(1, m + 1):

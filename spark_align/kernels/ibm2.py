@@ -41,7 +41,7 @@ import numpy as np
 from numba import njit
 
 from spark_align.kernels.ibm1 import argmax_per_token
-from spark_align.kernels.ragged import GenCells, View, offsets_from_lengths
+from spark_align.kernels.ragged import GenCells, View, grid_steps, offsets_from_lengths
 
 MIN_PROB = 1e-12
 LAMBDA_MAX = 100.0
@@ -198,8 +198,8 @@ def _bin(pos, length, cap):  # pragma: no cover - compiled; position_bin for one
 def _e_step_compiled(cond_len, gen_len, cell_offsets, grid, gen_major, t, table, offsets, cap, counts,
                      table_counts):  # pragma: no cover - compiled
     # Model 1's loop with t(f_j|e_i) times a(i|j,l,m) = table[entry] / bin size; the same operations in
-    # the same order as the numpy rendering (posteriors, then bincounts in link order). Cell (cond i,
-    # gen j) is grid[base + i * cond_step + j * gen_step].
+    # the same order as the numpy rendering (posteriors, then bincounts in link order). The grid is
+    # read as stored, in either order (``View.grid``, ``ragged.grid_steps``).
     max_l = 1
     for p in range(len(cond_len)):
         max_l = max(max_l, cond_len[p])
@@ -210,7 +210,7 @@ def _e_step_compiled(cond_len, gen_len, cell_offsets, grid, gen_major, t, table,
     for p in range(len(cond_len)):
         l, m = cond_len[p], gen_len[p]
         base = cell_offsets[p]
-        cond_step, gen_step = (1, l + 1) if gen_major else (m + 1, 1)
+        cond_step, gen_step = grid_steps(l, m, gen_major)
         lc, mc = min(l, cap), min(m, cap)
         for i in range(1, l + 1):
             if l > cap:
@@ -322,7 +322,7 @@ def _diag_e_step_compiled(cond_len, gen_len, cell_offsets, grid, gen_major, t, p
     for p in range(len(cond_len)):
         l, m = cond_len[p], gen_len[p]
         base = cell_offsets[p]
-        cond_step, gen_step = (1, l + 1) if gen_major else (m + 1, 1)
+        cond_step, gen_step = grid_steps(l, m, gen_major)
         lc, mc = min(l, cap), min(m, cap)
         for j in range(1, m + 1):
             col = base + j * gen_step

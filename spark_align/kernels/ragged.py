@@ -145,6 +145,16 @@ class View:
         return gen_cells(self.cond_len, self.gen_len, self.cell_offsets)
 
 
+@njit(cache=True, nogil=True, inline="always")
+def grid_steps(cond_len, gen_len, gen_major):  # pragma: no cover - compiled into the kernels
+    """(cond_step, gen_step) of one pair's cells in ``View.grid``: cell (cond i, gen j) is
+    ``grid[base + i * cond_step + j * gen_step]``, for a grid stored cond-major (the forward direction)
+    or gen-major (the reverse direction, ``View.gen_major``)."""
+    if gen_major:
+        return 1, cond_len + 1
+    return gen_len + 1, 1
+
+
 class GenCells:
     """Every (gen token, cond position) link of a view, token-major: every generated token in pair
     order, then cond positions 0..l (0 = NULL), so token ``k``'s link at position ``i`` is link
