@@ -33,7 +33,10 @@ A sentence with l = 0 aligns every word to NULL with probability 1.
 The training E-steps are numba-compiled loops over one pair at a time, as
 Model 1's: 134 and 118 M links/s (classic, diagonal) against 12.8 and 11.7 for
 the numpy link formulas they replaced (benchmarks/bench_kernels.py, same run).
-Decoding keeps those formulas (it runs once); a test holds the two to 1e-12.
+Decoding (posteriors and per-pair log-likelihood) is one compiled pass of the same
+kind. Both step through the grid as stored, so the reverse direction is never
+transposed. Tests hold them to the numpy link formulas (``tests/kernels/ibm2_links.py``)
+and to brute-force enumeration.
 """
 from __future__ import annotations
 
@@ -45,29 +48,6 @@ from spark_align.kernels.ragged import GenCells, View, grid_steps, offsets_from_
 
 MIN_PROB = 1e-12
 LAMBDA_MAX = 100.0
-
-
-# ---------------------------------------------------------------- link geometry
-
-def link_geometry(view: View, gc: GenCells) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(j, l, m) of every link of ``gc``: int64 arrays, shape (n_links,); j counts from 1."""
-    token_pair = np.repeat(np.arange(view.n_pairs, dtype=np.int64), view.gen_len)
-    token_offsets = offsets_from_lengths(view.gen_len)
-    token_j = np.arange(gc.n_tokens, dtype=np.int64) - token_offsets[token_pair] + 1
-    pair = token_pair[gc.token]
-    return token_j[gc.token], view.cond_len[pair], view.gen_len[pair]
-
-
-def position_bin(pos: np.ndarray, length: np.ndarray, cap: int) -> np.ndarray:
-    """Bin 1..min(length, cap) of positions 1..length (identity while length <= cap)."""
-    return np.where(length > cap, (pos - 1) * cap // np.maximum(length, 1) + 1, pos)
-
-
-def bin_size(bin_: np.ndarray, length: np.ndarray, cap: int) -> np.ndarray:
-    """How many positions of 1..length fall into ``bin_`` (1 while length <= cap), int64."""
-    def ceil_div(num):
-        return -(-num // cap)
-    return np.where(length > cap, ceil_div(bin_ * length) - ceil_div((bin_ - 1) * length), 1)
 
 
 # ---------------------------------------------------------------- classic table layout
@@ -104,17 +84,6 @@ def uniform_table(cap: int) -> np.ndarray:
     return np.repeat(1.0 / rows, rows)
 
 
-def table_index(cond_pos: np.ndarray, j: np.ndarray, l: np.ndarray, m: np.ndarray,
-                cap: int) -> tuple[np.ndarray, np.ndarray]:
-    """Table entry and bin size of links (i, j, l, m): (int64, int64), shape (n_links,)."""
-    offsets, _ = table_offsets(cap)
-    lc, mc = np.minimum(l, cap), np.minimum(m, cap)
-    ib = np.where(cond_pos > 0, position_bin(cond_pos, l, cap), 0)
-    jb = position_bin(j, m, cap)
-    size = np.where(cond_pos > 0, bin_size(ib, l, cap), 1)
-    return offsets[lc, mc] + (jb - 1) * (lc + 1) + ib, size
-
-
 def normalize_table(counts: np.ndarray, previous: np.ndarray, cap: int) -> np.ndarray:
     """M-step: a = max(count / row total, 1e-12); rows never seen keep ``previous``.
 
@@ -129,42 +98,7 @@ def normalize_table(counts: np.ndarray, previous: np.ndarray, cap: int) -> np.nd
     return np.where(seen, np.maximum(est, MIN_PROB), previous)
 
 
-# ---------------------------------------------------------------- shared link kernels
-
-def _gather(view: View, t: np.ndarray, gc: GenCells | None) -> tuple[GenCells, np.ndarray]:
-    gc = gc if gc is not None else view.gen_cells()
-    return gc, t[view.cells[gc.flat]]
-
-
-def link_posteriors(gc: GenCells, score: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """(posterior per link, per-token normaliser): post = score / sum over the token's links."""
-    denom = np.bincount(gc.token, weights=score, minlength=gc.n_tokens)
-    return score / denom[gc.token], denom
-
-
-def pair_loglik_from_denom(view: View, denom: np.ndarray) -> np.ndarray:
-    """Sum of log normalisers per pair: float64 (n_pairs,)."""
-    token_pair = np.repeat(np.arange(view.n_pairs, dtype=np.int64), view.gen_len)
-    return np.bincount(token_pair, weights=np.log(denom), minlength=view.n_pairs)
-
-
-def viterbi_from_posteriors(gc: GenCells, post: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Per-token argmax (links are independent): (best_pos int64, its posterior float64), (n_tokens,)."""
-    best = argmax_per_token(gc, post)
-    if gc.n_tokens == 0:
-        return best, np.zeros(0)
-    starts = np.flatnonzero(np.r_[True, gc.token[1:] != gc.token[:-1]])
-    return best, post[starts + best]
-
-
 # ---------------------------------------------------------------- classic Model 2
-
-def align_probs(view: View, gc: GenCells, table: np.ndarray, cap: int) -> tuple[np.ndarray, np.ndarray]:
-    """a(i | j, l, m) of every link and its table entry: (float64, int64), (n_links,)."""
-    j, l, m = link_geometry(view, gc)
-    idx, size = table_index(gc.cond_pos, j, l, m, cap)
-    return table[idx] / size, idx
-
 
 def e_step(view: View, t: np.ndarray, table: np.ndarray, cap: int,
            gc: GenCells | None = None) -> tuple[np.ndarray, np.ndarray, float]:
@@ -237,53 +171,18 @@ def _e_step_compiled(cond_len, gen_len, cell_offsets, grid, gen_major, t, table,
 
 def posteriors(view: View, t: np.ndarray, table: np.ndarray, cap: int,
                gc: GenCells | None = None) -> tuple[GenCells, np.ndarray]:
-    """Link posteriors, float64 (n_links,), summing to 1 per generated token."""
-    gc, p = _gather(view, t, gc)
-    a, _ = align_probs(view, gc, table, cap)
-    return gc, link_posteriors(gc, p * a)[0]
+    """Link posteriors, float64 (n_links,) in ``gc``'s order, summing to 1 per generated token."""
+    gc, post, _ = _decode(view, t, gc, table=table, cap=cap)
+    return gc, post
 
 
 def pair_loglik(view: View, t: np.ndarray, table: np.ndarray, cap: int,
                 gc: GenCells | None = None) -> np.ndarray:
     """log p(gen sentence | cond sentence) per pair, float64 (n_pairs,)."""
-    gc, p = _gather(view, t, gc)
-    a, _ = align_probs(view, gc, table, cap)
-    return pair_loglik_from_denom(view, link_posteriors(gc, p * a)[1])
+    return _decode(view, t, gc, table=table, cap=cap)[2]
 
 
 # ---------------------------------------------------------------- diagonal Model 2
-
-def diag_feature(cond_pos: np.ndarray, j: np.ndarray, l: np.ndarray, m: np.ndarray) -> np.ndarray:
-    """h = -|i/l - j/m| for real links (0 for NULL links and l = 0): float64 (n_links,)."""
-    real = cond_pos > 0
-    return np.where(real, -np.abs(cond_pos / np.maximum(l, 1) - j / np.maximum(m, 1)), 0.0)
-
-
-def diag_align_probs(view: View, gc: GenCells, p_null: float, lam: float,
-                     geometry: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None
-                     ) -> tuple[np.ndarray, np.ndarray]:
-    """a(i | j, l, m) of every link and the feature h: (float64, float64), (n_links,).
-
-    ``geometry``: (j, l, m) of the links if the caller already has them.
-    """
-    j, l, m = geometry if geometry is not None else link_geometry(view, gc)
-    h = diag_feature(gc.cond_pos, j, l, m)
-    real = gc.cond_pos > 0
-    # h <= 0, so exp never overflows; every token with l >= 1 has a link with h >= -1/l.
-    w = np.where(real, np.exp(lam * h), 0.0)
-    z = np.bincount(gc.token, weights=w, minlength=gc.n_tokens)[gc.token]
-    real_part = np.divide((1.0 - p_null) * w, z, out=np.zeros_like(w), where=real)
-    return np.where(real, real_part, np.where(l == 0, 1.0, p_null)), h
-
-
-def diag_context_index(j: np.ndarray, l: np.ndarray, m: np.ndarray, cap: int) -> np.ndarray:
-    """Context (bin(j), min(l,cap), min(m,cap)) of tokens with l >= 1: int64 index into
-    an array of ``diag_n_contexts(cap)``; layout [l'-1][m'-1 block][j'-1]."""
-    lc, mc = np.minimum(l, cap), np.minimum(m, cap)
-    jb = position_bin(j, m, cap)
-    per_l = cap * (cap + 1) // 2
-    return (lc - 1) * per_l + (mc - 1) * mc // 2 + (jb - 1)
-
 
 def diag_n_contexts(cap: int) -> int:
     return cap * (cap * (cap + 1) // 2)
@@ -353,18 +252,89 @@ def _diag_e_step_compiled(cond_len, gen_len, cell_offsets, grid, gen_major, t, p
 
 def diag_posteriors(view: View, t: np.ndarray, p_null: float, lam: float,
                     gc: GenCells | None = None) -> tuple[GenCells, np.ndarray]:
-    """Link posteriors, float64 (n_links,), summing to 1 per generated token."""
-    gc, p = _gather(view, t, gc)
-    a, _ = diag_align_probs(view, gc, p_null, lam)
-    return gc, link_posteriors(gc, p * a)[0]
+    """Link posteriors, float64 (n_links,) in ``gc``'s order, summing to 1 per generated token."""
+    gc, post, _ = _decode(view, t, gc, p_null=p_null, lam=lam)
+    return gc, post
 
 
 def diag_pair_loglik(view: View, t: np.ndarray, p_null: float, lam: float,
                      gc: GenCells | None = None) -> np.ndarray:
     """log p(gen sentence | cond sentence) per pair, float64 (n_pairs,)."""
-    gc, p = _gather(view, t, gc)
-    a, _ = diag_align_probs(view, gc, p_null, lam)
-    return pair_loglik_from_denom(view, link_posteriors(gc, p * a)[1])
+    return _decode(view, t, gc, p_null=p_null, lam=lam)[2]
+
+
+# ---------------------------------------------------------------- decoding (both)
+
+def viterbi_from_posteriors(gc: GenCells, post: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Per-token argmax (links are independent): (best_pos int64, its posterior float64), (n_tokens,)."""
+    best = argmax_per_token(gc, post)
+    return best, post[gc.token_starts + best]
+
+
+def _decode(view: View, t: np.ndarray, gc: GenCells | None, *, table: np.ndarray | None = None, cap: int = 1,
+            p_null: float = 0.0, lam: float = 0.0) -> tuple[GenCells, np.ndarray, np.ndarray]:
+    """(gc, link posteriors, log-likelihood per pair) of the classic model (``table`` given) or the
+    diagonal one, in one compiled pass over the grid as stored: no transpose, no per-link index arrays."""
+    gc = gc if gc is not None else view.gen_cells()
+    post, per_pair = np.empty(gc.n_links), np.empty(view.n_pairs)
+    diag = table is None
+    offsets = np.zeros((1, 1), np.int64) if diag else table_offsets(cap)[0]
+    _decode_compiled(*_view_arrays(view), np.asarray(t, np.float64), diag,
+                     np.zeros(1) if diag else np.asarray(table, np.float64), offsets, int(cap), float(p_null),
+                     float(lam), post, per_pair)
+    return gc, post, per_pair
+
+
+@njit(cache=True, nogil=True)
+def _decode_compiled(cond_len, gen_len, cell_offsets, grid, gen_major, t, diag, table, offsets, cap, p_null, lam,
+                     post, per_pair):  # pragma: no cover - compiled
+    # Links in gen_cells order (token-major, cond positions 0..l); each link's score as the E-step forms
+    # it (classic: t * (table[entry] / bin size); diagonal: t * p0 for NULL, t * ((1 - p0) w / Z) for
+    # real i), post = score / (the token's scores summed in order), per pair the sum of log denominators.
+    max_l = 1
+    for p in range(len(cond_len)):
+        max_l = max(max_l, cond_len[p])
+    score = np.empty(max_l + 1)
+    w = np.empty(max_l + 1)
+    size = np.ones(max_l + 1, np.int64)
+    k = 0
+    for p in range(len(cond_len)):
+        l, m = cond_len[p], gen_len[p]
+        base = cell_offsets[p]
+        cond_step, gen_step = grid_steps(l, m, gen_major)
+        lc, mc = min(l, cap), min(m, cap)
+        if not diag:
+            for i in range(1, l + 1):
+                if l > cap:
+                    b = _bin(i, l, cap)
+                    size[i] = -(-(b * l) // cap) + (-((b - 1) * l)) // cap
+                else:
+                    size[i] = 1
+        ll = 0.0
+        for j in range(1, m + 1):
+            col = base + j * gen_step
+            denom = 0.0
+            if diag:
+                z = 0.0
+                for i in range(1, l + 1):
+                    w[i] = np.exp(lam * -abs(i / l - j / m))
+                    z += w[i]
+                score[0] = t[grid[col]] * (1.0 if l == 0 else p_null)
+                denom += score[0]
+                for i in range(1, l + 1):
+                    score[i] = t[grid[col + i * cond_step]] * ((1.0 - p_null) * w[i] / z)
+                    denom += score[i]
+            else:
+                row = offsets[lc, mc] + (_bin(j, m, cap) - 1) * (lc + 1)
+                for i in range(l + 1):
+                    e = row + (_bin(i, l, cap) if i > 0 else 0)
+                    score[i] = t[grid[col + i * cond_step]] * (table[e] / size[i])
+                    denom += score[i]
+            for i in range(l + 1):
+                post[k + i] = score[i] / denom
+            k += l + 1
+            ll += np.log(denom)
+        per_pair[p] = ll
 
 
 def _context_features(cap: int) -> tuple[np.ndarray, np.ndarray]:

@@ -20,15 +20,16 @@ Why: looking up each link's current probability is the expensive part of an
 E-step. The grid turns that lookup into one gather ``probs[grid]`` from an
 array of n_dict floats that fits in cache; the sort that builds it runs once at
 ingestion, not once per iteration. Both directions share one grid (the reverse
-direction reads it transposed), and per-block dictionaries are exactly the
+direction reads it in the other order), and per-block dictionaries are exactly the
 parameter slice a block needs, so tables can be shipped per block.
 
 A *view* is a block seen from one direction: ``cond`` is the conditioning side
 (rows, with NULL at row 0) and ``gen`` the generated side (columns 1..m; column
-0 is ignored). The forward direction p(target | source) uses the grid as is;
-the reverse direction p(source | target) uses the transposed grid, made when a
-kernel first asks for it. Every model's E-step, and Model 1's and the HMM's
-decoding, read the stored grid in either order and never do.
+0 is ignored). The forward direction p(target | source) reads the grid row by
+row, the reverse direction p(source | target) column by column: every model's
+E-step and decoding step through the stored grid in either order
+(``grid_steps``). ``View.cells``, the transposed grid, is made only when asked
+for (tests compare the kernels against it); no kernel asks.
 """
 from __future__ import annotations
 

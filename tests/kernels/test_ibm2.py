@@ -9,6 +9,7 @@ import pytest
 
 from spark_align.kernels import ibm2
 from spark_align.models.ibm2 import IBM2, IBM2Diag
+from tests.kernels import ibm2_links
 from tests.kernels.local_em import cond_gen_words, make_block, random_corpus, run_em
 
 
@@ -105,10 +106,11 @@ def test_diag_matches_enumeration(seed, direction):
 
 
 @pytest.mark.parametrize("direction", ["forward", "reverse"])
-def test_compiled_e_steps_equal_the_numpy_link_formulas(direction):
-    """The compiled E-steps give what the link-level numpy formulas (the decoder's) give, on sentences
-    longer than the cap (binned positions, bin sizes) and empty sides: lexical counts and table counts
-    as the posteriors summed per entry, feature, context masses and log-likelihood."""
+def test_compiled_kernels_equal_the_numpy_link_formulas(direction):
+    """The compiled E-steps and decoding give what the link-level numpy formulas give
+    (``tests/kernels/ibm2_links.py``), on sentences longer than the cap (binned positions, bin sizes)
+    and empty sides: posteriors and per-pair log-likelihoods; lexical counts and table counts as the
+    posteriors summed per entry, feature, context masses and log-likelihood."""
     rng = np.random.default_rng(21)
     pairs = random_corpus(rng, 60, max_len=14, n_src_words=9, n_tgt_words=9) + [([], [1, 2]), ([3], [])]
     block = make_block(pairs)
@@ -117,31 +119,36 @@ def test_compiled_e_steps_equal_the_numpy_link_formulas(direction):
     cap = 4
     table = ibm2.normalize_table(rng.uniform(0.1, 1.0, ibm2.table_size(cap)), ibm2.uniform_table(cap), cap)
     assert view.cond_len.max() > cap and view.gen_len.max() > cap
+    gc = view.gen_cells()
+    a, idx = ibm2_links.align_probs(view, gc, table, cap)
+    post, per_pair = ibm2_links.posteriors_and_loglik(view, t, a)
+    np.testing.assert_allclose(ibm2.posteriors(view, t, table, cap)[1], post, rtol=1e-13)
+    np.testing.assert_allclose(ibm2.pair_loglik(view, t, table, cap), per_pair, rtol=1e-13)
     counts, table_counts, loglik = ibm2.e_step(view, t, table, cap)
-    gc, post = ibm2.posteriors(view, t, table, cap)
-    _, idx = ibm2.align_probs(view, gc, table, cap)
     np.testing.assert_allclose(counts, np.bincount(view.cells[gc.flat], weights=post, minlength=len(t)), rtol=1e-12)
     np.testing.assert_allclose(table_counts, np.bincount(idx, weights=post, minlength=len(table)), rtol=1e-12,
                                atol=1e-15)
-    assert loglik == pytest.approx(ibm2.pair_loglik(view, t, table, cap).sum(), rel=1e-12)
+    assert loglik == pytest.approx(per_pair.sum(), rel=1e-12)
 
     p_null, lam = 0.15, 2.5
+    post, per_pair = ibm2_links.posteriors_and_loglik(view, t, ibm2_links.diag_align_probs(view, gc, p_null, lam))
+    np.testing.assert_allclose(ibm2.diag_posteriors(view, t, p_null, lam)[1], post, rtol=1e-13)
+    np.testing.assert_allclose(ibm2.diag_pair_loglik(view, t, p_null, lam), per_pair, rtol=1e-13)
     counts, feature, mass, loglik = ibm2.diag_e_step(view, t, p_null, lam, cap)
-    gc, post = ibm2.diag_posteriors(view, t, p_null, lam)
-    j, l, m = ibm2.link_geometry(view, gc)
+    j, l, m = ibm2_links.link_geometry(view, gc)
     real = gc.cond_pos > 0
     np.testing.assert_allclose(counts, np.bincount(view.cells[gc.flat], weights=post, minlength=len(t)), rtol=1e-12)
-    assert feature == pytest.approx(float(np.dot(post, ibm2.diag_feature(gc.cond_pos, j, l, m))), rel=1e-12)
-    want_mass = np.bincount(ibm2.diag_context_index(j[real], l[real], m[real], cap), weights=post[real],
+    assert feature == pytest.approx(float(np.dot(post, ibm2_links.diag_feature(gc.cond_pos, j, l, m))), rel=1e-12)
+    want_mass = np.bincount(ibm2_links.diag_context_index(j[real], l[real], m[real], cap), weights=post[real],
                             minlength=ibm2.diag_n_contexts(cap))
     np.testing.assert_allclose(mass, want_mass, rtol=1e-12, atol=1e-15)
-    assert loglik == pytest.approx(ibm2.diag_pair_loglik(view, t, p_null, lam).sum(), rel=1e-12)
+    assert loglik == pytest.approx(per_pair.sum(), rel=1e-12)
 
 
-
-def test_reverse_e_steps_read_the_stored_grid_and_equal_the_transposed_one():
-    """Both Model 2 E-steps read the reverse direction's cells from the grid as stored (gen-major),
-    without transposing it, and give bit for bit what they give on the transposed cells."""
+def test_reverse_kernels_read_the_stored_grid_and_equal_the_transposed_one():
+    """Both Model 2 E-steps and both decoders read the reverse direction's cells from the grid as stored
+    (gen-major), without transposing it or making per-link index arrays, and give bit for bit what they
+    give on the transposed cells."""
     import dataclasses
 
     rng = np.random.default_rng(22)
@@ -150,10 +157,18 @@ def test_reverse_e_steps_read_the_stored_grid_and_equal_the_transposed_one():
     cap = 4
     table = ibm2.normalize_table(rng.uniform(0.1, 1.0, ibm2.table_size(cap)), ibm2.uniform_table(cap), cap)
     view = block.view("reverse")
-    got = (*ibm2.e_step(view, t, table, cap), *ibm2.diag_e_step(view, t, 0.15, 2.5, cap))
+
+    def everything(v):
+        gc, post = ibm2.posteriors(v, t, table, cap)
+        diag_gc, diag_post = ibm2.diag_posteriors(v, t, 0.15, 2.5)
+        assert "_arrays" not in vars(gc) and "_arrays" not in vars(diag_gc)  # no per-link index arrays
+        return (*ibm2.e_step(v, t, table, cap), *ibm2.diag_e_step(v, t, 0.15, 2.5, cap), post, diag_post,
+                ibm2.pair_loglik(v, t, table, cap), ibm2.diag_pair_loglik(v, t, 0.15, 2.5))
+
+    got = everything(view)
     assert view.gen_major and "cells" not in vars(view)  # no transpose made
     transposed = dataclasses.replace(view, grid=view.cells, gen_major=False)
-    want = (*ibm2.e_step(transposed, t, table, cap), *ibm2.diag_e_step(transposed, t, 0.15, 2.5, cap))
+    want = everything(transposed)
     for a, b in zip(got, want):
         np.testing.assert_array_equal(a, b)
 
@@ -164,12 +179,12 @@ def test_long_sides_share_rows_and_stay_normalised():
     for l, m in [(9, 3), (2, 11), (13, 17), (4, 4), (5, 4)]:
         i = np.tile(np.arange(l + 1), m)
         j = np.repeat(np.arange(1, m + 1), l + 1)
-        idx, size = ibm2.table_index(i, j, np.full_like(i, l), np.full_like(i, m), cap)
+        idx, size = ibm2_links.table_index(i, j, np.full_like(i, l), np.full_like(i, m), cap)
         a = (table[idx] / size).reshape(m, l + 1)
         assert np.allclose(a.sum(axis=1), 1.0), (l, m)
         assert idx.max() < ibm2.table_size(cap)
     # Within the cap every (i, j, l, m) has its own entry.
-    idx = [ibm2.table_index(np.array([i]), np.array([j]), np.array([l]), np.array([m]), cap)[0][0]
+    idx = [ibm2_links.table_index(np.array([i]), np.array([j]), np.array([l]), np.array([m]), cap)[0][0]
            for l in range(cap + 1) for m in range(1, cap + 1) for j in range(1, m + 1) for i in range(l + 1)]
     assert sorted(idx) == list(range(ibm2.table_size(cap)))
 
@@ -215,8 +230,8 @@ def test_lambda_m_step_maximises_q():
     # Q at the optimum equals the model's expected complete log-likelihood part from the E-step:
     # lam * E[h] - sum_tokens P(real) log Z evaluated link by link.
     gc = view.gen_cells()
-    j, l, m = ibm2.link_geometry(view, gc)
-    h = ibm2.diag_feature(gc.cond_pos, j, l, m)
+    j, l, m = ibm2_links.link_geometry(view, gc)
+    h = ibm2_links.diag_feature(gc.cond_pos, j, l, m)
     real = gc.cond_pos > 0
     z = np.bincount(gc.token, weights=np.where(real, np.exp(lam * h), 0.0), minlength=gc.n_tokens)
     _, post = ibm2.diag_posteriors(view, t, 0.08, 4.0)
