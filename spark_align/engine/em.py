@@ -129,22 +129,20 @@ class Trainer:
         n_parts = self.n_reducers()
         stage = self.cfg.stages[state.stage_index]
         rel = RunStore.checkpoint_dir(state.stage_index, stage.model, state.iteration + 1)
+        # Two tasks per core by default: every task ships the entries it touched, so fewer tasks
+        # shuffle fewer bytes and leave the reducers less to merge (13 tasks shuffled 274 MB at 100k
+        # pairs). One per core measured 9-13% faster per Model 1 iteration (8.3 against 9.0-9.5 s at
+        # 1M pairs, local[2]) with 14% more peak worker memory (1726 against 1504-1520 MB); two leave
+        # a retried or slow task less to redo and spread uneven tasks better over the cores. The
+        # setting chooses.
+        units = self.block_units()
+        per_core = tasks_per_core(self.spark.conf.get(TASKS_PER_CORE_CONF, str(TASKS_PER_CORE)))
+        n_tasks = max(1, min(len(units), per_core * sc.defaultParallelism))
         if path == "join":
-            stats = shipping.join_stats(self.spark, self.store, self.blocks(), state.table_path, model,
-                                        self.directions, state.dense)
-            pairs = (stats.mapInArrow(mstep.make_payload_folder(n_parts), mstep.PAYLOAD_DDL)
-                     .rdd.map(lambda row: (row[0], row[1])))
+            pairs = shipping.join_payloads(self.spark, self.store, units, state.table_path, model, self.directions,
+                                           state.dense, n_tasks=n_tasks, n_buckets=n_parts)
         else:
             source = tables_mod.table_source(state.table_path, self.directions, src_v, tgt_v)
-            units = self.block_units()
-            # Two tasks per core by default: every task ships the entries it touched, so fewer tasks
-            # shuffle fewer bytes and leave the reducers less to merge (13 tasks shuffled 274 MB at 100k
-            # pairs). One per core measured 9-13% faster per Model 1 iteration (8.3 against 9.0-9.5 s at
-            # 1M pairs, local[2]) with 14% more peak worker memory (1726 against 1504-1520 MB); two leave
-            # a retried or slow task less to redo and spread uneven tasks better over the cores. The
-            # setting chooses.
-            per_core = tasks_per_core(self.spark.conf.get(TASKS_PER_CORE_CONF, str(TASKS_PER_CORE)))
-            n_tasks = max(1, min(len(units), per_core * sc.defaultParallelism))
             estep = make_estep(model, self.directions, source, state.dense,
                                blocks_url=fsspec_url(self.store.spark_path("encoded", "blocks")), n_buckets=n_parts,
                                hints_url=fsspec_url(self.store.spark_path("encoded", "hints")))

@@ -3,9 +3,9 @@
 On the whole-table path (:func:`make_estep`) each task reads its row groups of
 encoded blocks, looks its blocks' dictionaries up in the table every Python
 worker holds (``engine.tables``), runs the model's pure kernel per direction
-and folds everything into one sum per row (``engine.mstep.TaskCounts``); on the
-join path (``engine.shipping``) each block's rows are emitted as they are
-(:func:`block_rows`) and folded per task afterwards. Rows are
+(:func:`block_results`) and folds everything into one sum per row
+(``engine.mstep.TaskCounts``); the join path (``engine.shipping``) does the same
+with the entries its units need, received through the join. Rows are
 ``(dir, src, tgt, hi, lo)``:
 
 * ``src >= 0``: expected count of the pair (src, tgt) in direction ``dir``;
@@ -15,7 +15,8 @@ join path (``engine.shipping``) each block's rows are emitted as they are
   whole-table path only, per task: ``tgt == 3`` task seconds, of which ``tgt == 4`` finding the
   blocks' entries in the table (the lookup), ``5`` adding counts into the task's accumulators,
   ``6`` loading the table (first task of a Python worker per iteration), ``7`` reading blocks and
-  ``8`` preparing the task's output records; per direction, ``9`` dictionary keys the lookup had
+  ``8`` preparing the task's output records (on the join path, 4, 7 and 8 only); per direction,
+  ``9`` dictionary keys the lookup had
   to search for (no usable stored hint, ``engine.hints``), ``10`` keys it looked up and ``11`` keys
   whose stored positions it took as they are).
 
@@ -32,14 +33,11 @@ import os
 import time
 
 import numpy as np
-import pyarrow as pa
 
 from spark_align.engine import faults
 from spark_align.engine.ingest import blocks_from_batch
 from spark_align.engine.tables import DIRS, MIN_PROB, keep_freed_memory
-from spark_align.kernels import ragged
 
-STATS_SCHEMA = "dir byte, src int, tgt int, hi long, lo long"
 HI_SCALE = 2.0 ** 20
 LO_SCALE = 2.0 ** 30
 DENSE, SCALAR = -1, -2
@@ -177,21 +175,30 @@ def make_estep(model, directions: tuple[str, ...], tables_src, dense: dict[str, 
         records = list(task.payloads(n_buckets))
         payload_seconds = time.perf_counter() - payload_started
         note_task_memory("broadcast")
-        # Scalars 3-11 in a record of their own: the task's wall time (reading, table lookups, kernels,
+        # Scalars 3-11 in records of their own: the task's wall time (reading, table lookups, kernels,
         # folding, preparing its output) and the parts of it named in the module docstring, the same
         # under every direction, then the direction's lookup counts.
         values = [time.perf_counter() - started, lookup_seconds, add_seconds, load_seconds, read_seconds,
                   payload_seconds]
-        timing = mstep.TaskCounts(tables)
-        for direction in directions:
-            row = np.array(values + [searched_total[direction], keys_total[direction], trusted_total[direction]],
-                           np.float64)
-            timing.add_rows(DIRS.index(direction), np.full(len(row), SCALAR, np.int32),
-                            np.arange(3, 3 + len(row), dtype=np.int32), row)
         yield from records
-        yield from timing.payloads(n_buckets)
+        yield from timing_payloads(directions, values, n_buckets, {
+            d: [searched_total[d], keys_total[d], trusted_total[d]] for d in directions})
 
     return estep
+
+
+def timing_payloads(directions: tuple[str, ...], values: list[float], n_buckets: int,
+                    per_direction: dict[str, list[float]] | None = None):
+    """(bucket, payload) records of a task's scalars 3, 4, ...: ``values`` under every direction, then
+    that direction's ``per_direction`` values (module docstring)."""
+    from spark_align.engine import mstep
+
+    timing = mstep.TaskCounts({})
+    for direction in directions:
+        row = np.array(values + (per_direction or {}).get(direction, []), np.float64)
+        timing.add_rows(DIRS.index(direction), np.full(len(row), SCALAR, np.int32),
+                        np.arange(3, 3 + len(row), dtype=np.int32), row)
+    return timing.payloads(n_buckets)
 
 
 E_STEP_COLUMNS = ["block_id", "src_len", "src_ids", "tgt_len", "tgt_ids", "dict_keys", "grid"]
@@ -246,27 +253,6 @@ def block_results(model, directions: tuple[str, ...], block, t_locals: dict[str,
                  np.concatenate([stats[stat_index], [loglik, kernel_seconds, n_links]]))
         out.append((DIRS.index(direction), lexical, counts, other))
     return out
-
-
-def block_rows(model, directions: tuple[str, ...], block, t_locals: dict[str, np.ndarray],
-               dense: dict[str, dict]) -> list[tuple[np.ndarray, ...]]:
-    """:func:`block_results` as (dir, src, tgt, value) array tuples, one per direction."""
-    src, tgt = ragged.split_key(block.dict_keys)
-    parts = []
-    for d, emitted, counts, (o_src, o_tgt, o_val) in block_results(model, directions, block, t_locals, dense):
-        values = np.concatenate([counts[emitted], o_val])
-        parts.append((np.full(len(values), d, np.int8), np.concatenate([src[emitted], o_src]).astype(np.int32),
-                      np.concatenate([tgt[emitted], o_tgt]).astype(np.int32), values))
-    return parts
-
-
-def rows_batch(parts: list[tuple[np.ndarray, ...]]) -> pa.RecordBatch:
-    """One Arrow batch of ``STATS_SCHEMA`` rows from :func:`block_rows` parts (values as fixed point)."""
-    d_col, s_col, t_col, v_col = (np.concatenate(x) for x in zip(*parts))
-    hi, lo = to_fixed(v_col)
-    return pa.RecordBatch.from_arrays(
-        [pa.array(d_col), pa.array(s_col), pa.array(t_col), pa.array(hi), pa.array(lo)],
-        names=["dir", "src", "tgt", "hi", "lo"])
 
 
 # Benchmark-only: when set (to a directory), each E-step task and reducer appends its Python worker's peak

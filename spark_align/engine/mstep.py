@@ -134,24 +134,6 @@ class TaskCounts:
             yield bucket, b"".join(by_bucket[bucket])
 
 
-def make_payload_folder(n_buckets: int):
-    """``mapInArrow`` function: ``engine.estep.STATS_SCHEMA`` rows -> (bucket, payload), folded per task."""
-
-    def fold(batches):
-        buffer = counts.HashCounts()  # rows come as each block's sorted runs
-        for batch in batches:
-            cols = [batch.column(i).to_numpy() for i in range(5)]
-            fold_rows(buffer, *cols)
-        for bucket, data in payloads(buffer, n_buckets):
-            yield pa.RecordBatch.from_arrays([pa.array([bucket], pa.int32()), pa.array([data], pa.binary())],
-                                             names=["bucket", "payload"])
-
-    return fold
-
-
-PAYLOAD_DDL = "bucket int, payload binary"
-
-
 def part_name(index: int) -> str:
     return f"part-{index:05d}.parquet"
 

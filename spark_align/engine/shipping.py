@@ -12,21 +12,25 @@ accumulators, 17; the table's order by reducer bucket, 8; rounded up),
 whatever the partition holds; the driver holds none of it.
 
 ``join`` (this module; distributed EM after Wolfe, Haghighi & Klein 2008):
-each block receives only the entries of its own dictionary, through Spark's
-shuffle. The *block dictionary* ``(block_id, idx, key)`` -- every block's
-``dict_keys`` exploded (``ingest.dict_entries``), ``idx`` its position -- is written once per run under
-``encoded/block_dict`` (on first use). Per iteration::
+each E-step task receives only the entries its blocks need, through Spark's
+shuffle. The *unit keys* ``(unit, key)`` -- every distinct dictionary key of
+each unit of work (one row group of encoded blocks, ``mstep.block_units``) --
+are written once per run under ``encoded/unit_keys`` (on first use, with the
+units they number in ``encoded/unit_keys.json``, written last). Per iteration::
 
-    params = block_dict JOIN table ON key            -> (block_id, idx, dir, prob)
-    blocks.groupBy(block_id).cogroup(params.groupBy(block_id)).applyInArrow(E-step)
+    params = unit_keys LEFT JOIN table ON key             -> (unit, key, dir, prob)
+    params.repartition(tasks, unit).sortWithinPartitions(unit).mapInArrow(E-step)
 
-Each cogroup call sees one block and its params and scatters them into
-``t_local`` (``MIN_PROB`` where the join found nothing, as the broadcast
-lookup does). Memory per task: one block plus 24 bytes x its dictionary,
-independent of the table's size; the driver holds nothing table-sized. The
-price is a shuffle per iteration of the block dictionary joined with the table
-(about 30 bytes per dictionary entry) and of the blocks themselves (the link
-grid: 4 bytes per cell), which the broadcast path avoids.
+The E-step task takes one unit's rows at a time, reads that unit's blocks
+from Parquet itself (as the broadcast path does: the blocks never pass through
+the shuffle), finds each block's dictionary in the unit's entries (``MIN_PROB``
+where the table has none, as the broadcast lookup gives) and folds the counts of
+all its units into one sum per key before emitting them by reducer bucket.
+Memory per task: one unit's entries (about 25 bytes per unit key and
+direction) and blocks, and the task's folded counts; nothing table-sized
+anywhere, the driver included. The price is the join's shuffles every
+iteration (the unit keys and the table by key, then the joined entries by
+unit), which the broadcast path avoids.
 
 The rule (``--shipping auto``): broadcast while the whole table fits the
 budget, ``entries x 48 bytes <= --table-budget-mb``, else join. The default
@@ -36,17 +40,20 @@ where many Python workers share one executor's memory.
 """
 from __future__ import annotations
 
+import posixpath
+import time
+
 import numpy as np
 import pyarrow as pa
 
 from spark_align.config import SHIPPINGS as SHIPPING_MODES
-from spark_align.engine.estep import STATS_SCHEMA, _maybe_fail, block_rows, note_task_memory, rows_batch
-from spark_align.engine.ingest import DICT_ENTRIES_SCHEMA, blocks_from_batch, dict_entries
-from spark_align.engine.tables import DIRS, MIN_PROB, keep_freed_memory
+from spark_align.engine.estep import _maybe_fail, note_task_memory
+from spark_align.engine.ingest import block_array
+from spark_align.engine.tables import DIRS, DirectionTable, keep_freed_memory
 
 BYTES_PER_ENTRY = 48  # per Python worker per entry on the whole-table path (see the module docstring)
 DEFAULT_BUDGET_MB = 768
-BLOCK_DICT = ("encoded", "block_dict")
+UNIT_KEYS = ("encoded", "unit_keys")
 
 
 def choose_shipping(mode: str, n_entries: int | None, budget_mb: float) -> str:
@@ -77,67 +84,150 @@ def table_entries(spark, table_path: str) -> int:
         return spark.read.parquet(table_path).count()
 
 
-def block_dict_frame(spark, store, blocks_df):
-    """The exploded block dictionaries (block_id, idx, key), written once under ``encoded/block_dict``."""
-    path = store.spark_path(*BLOCK_DICT)
-    if not store.exists(*BLOCK_DICT, "_SUCCESS"):  # Spark writes _SUCCESS last: absent means unfinished
-        blocks_df.mapInArrow(dict_entries, DICT_ENTRIES_SCHEMA).write.mode("overwrite").parquet(path)
-    return spark.read.parquet(path)
+UNIT_KEYS_SCHEMA = "unit int, key long"
 
 
-def params_frame(block_dict, table_df):
-    """(block_id, idx, dir, prob): the table entries each block's dictionary needs."""
+def unit_keys_frame(spark, store, units: list[tuple[str, int]]):
+    """(unit, key): the distinct dictionary keys of every unit of ``units`` (``mstep.block_units``),
+    written once under ``encoded/unit_keys``; returns the frame and the units it numbers (as written in
+    ``encoded/unit_keys.json``, the commit: absent means unfinished, and the keys are written again)."""
+    from spark_align.store import fsspec_url
+
+    path = store.spark_path(*UNIT_KEYS)
+    if store.exists(*UNIT_KEYS[:-1], UNIT_KEYS[-1] + ".json"):
+        listed = store.read_json("/".join(UNIT_KEYS) + ".json")["units"]
+        return spark.read.parquet(path), [(store.fsspec_path("encoded", "blocks", name), rg) for name, rg in listed]
+    sc = spark.sparkContext
+    rows = [(i, path_, rg) for i, (path_, rg) in enumerate(units)]
+    units_df = sc.parallelize(rows, max(1, min(len(rows), 4 * sc.defaultParallelism))).toDF(
+        "unit int, path string, row_group int")
+    units_df.mapInArrow(unit_keys(fsspec_url(store.spark_path("encoded", "blocks"))),
+                        UNIT_KEYS_SCHEMA).write.mode("overwrite").parquet(path)
+    store.write_json("/".join(UNIT_KEYS) + ".json",
+                     {"units": [[posixpath.basename(path_), rg] for path_, rg in units]})
+    return spark.read.parquet(path), units
+
+
+def unit_keys(blocks_url: str):
+    """``mapInArrow`` function: (unit, path, row_group) rows -> (unit, key), the unit's blocks' dictionary
+    keys, each once (only the ``dict_keys`` column is read)."""
+
+    def fn(batches):
+        import fsspec
+
+        from spark_align.engine.mstep import read_unit
+
+        fs, _root = fsspec.core.url_to_fs(blocks_url)
+        for batch in batches:
+            for unit, path, row_group in zip(*(batch.column(i).to_pylist() for i in range(3))):
+                keys = [block_array(b.column(0), k, "dict_keys")
+                        for b in read_unit(fs, path, row_group, columns=["dict_keys"]) for k in range(b.num_rows)]
+                keys = np.unique(np.concatenate(keys)) if keys else np.zeros(0, np.int64)
+                yield pa.RecordBatch.from_arrays([pa.array(np.full(len(keys), unit, np.int32)), pa.array(keys)],
+                                                 names=["unit", "key"])
+
+    return fn
+
+
+def params_frame(unit_keys_df, table_df):
+    """(unit, key, dir, prob): every unit key with the table's entries for it (dir and prob null where the
+    table has none, so that every unit has rows)."""
     from pyspark.sql import functions as F
 
     keyed = table_df.select("dir", (F.shiftleft(F.col("src").cast("long"), 32)
                                     .bitwiseOR(F.col("tgt").cast("long"))).alias("key"), "prob")
-    return block_dict.join(keyed, "key").select("block_id", "idx", "dir", "prob")
+    return unit_keys_df.join(keyed, "key", "left").select("unit", "key", "dir", "prob")
 
 
-def local_probs(n_dict: int, idx: np.ndarray, dirs: np.ndarray, probs: np.ndarray,
-                directions: tuple[str, ...]) -> dict[str, np.ndarray]:
-    """Per direction, float64 (n_dict,): ``probs`` scattered to ``idx``, ``MIN_PROB`` elsewhere."""
+def unit_tables(params: pa.Table, directions: tuple[str, ...]) -> dict[str, DirectionTable]:
+    """One unit's joined entries as a sorted :class:`~spark_align.engine.tables.DirectionTable` per
+    direction, which finds a block's dictionary in them as the broadcast path finds it in the whole
+    table."""
+    import pyarrow.compute as pc
+
+    keys = params.column("key").to_numpy()
+    dirs = pc.fill_null(params.column("dir"), -1).to_numpy()
+    probs = pc.fill_null(params.column("prob"), 0.0).to_numpy()
     out = {}
     for direction in directions:
-        sel = dirs == DIRS.index(direction)
-        t = np.full(n_dict, MIN_PROB)
-        t[idx[sel]] = probs[sel]
-        out[direction] = t
+        sel = np.flatnonzero(dirs == DIRS.index(direction))
+        order = sel[np.argsort(keys[sel], kind="stable")]
+        out[direction] = DirectionTable(np.ascontiguousarray(keys[order]), np.ascontiguousarray(probs[order]))
     return out
 
 
-def make_join_estep(model, directions: tuple[str, ...], dense: dict[str, dict]):
-    """The cogroup function: (one block's row, its params) -> ``STATS_SCHEMA`` rows."""
+def make_join_estep(model, directions: tuple[str, ...], dense: dict[str, dict], *, blocks_url: str,
+                    units: list[tuple[str, int]], n_buckets: int):
+    """The ``mapInArrow`` E-step of the join path: a task's params rows, sorted by unit -> (bucket,
+    payload) records of all its units' counts, folded (``engine.mstep``), and the timing scalars of
+    ``engine.estep``'s module docstring (3, 4, 7 and 8)."""
 
-    def estep(block_table: pa.Table, params: pa.Table) -> pa.Table:
+    def estep(batches):
+        import fsspec
+
+        from spark_align.engine import mstep
+        from spark_align.engine.estep import block_results, read_blocks, timing_payloads
+
         _maybe_fail()
         keep_freed_memory()
-        parts = []
-        idx = params.column("idx").to_numpy()
-        dirs = params.column("dir").to_numpy()
-        probs = params.column("prob").to_numpy()
-        for batch in block_table.to_batches():
-            for _block_id, _rows, block in blocks_from_batch(batch):
-                t_locals = local_probs(len(block.dict_keys), idx, dirs, probs, directions)
-                parts.extend(block_rows(model, directions, block, t_locals, dense))
+        started = time.perf_counter()
+        fs, _root = fsspec.core.url_to_fs(blocks_url)
+        task = mstep.TaskCounts({})
+        seconds = {"lookup": 0.0, "read": 0.0}
+
+        def run_unit(unit: int, pieces: list[pa.RecordBatch]) -> None:
+            looked_up = time.perf_counter()
+            found_in = unit_tables(pa.Table.from_batches(pieces), directions)
+            seconds["lookup"] += time.perf_counter() - looked_up
+            read_started = time.perf_counter()
+            blocks = read_blocks(fs, *units[unit], with_keys=True)
+            seconds["read"] += time.perf_counter() - read_started
+            for block in blocks:
+                looked_up = time.perf_counter()
+                t_locals = {d: found_in[d].local(block.dict_keys) for d in directions}
+                seconds["lookup"] += time.perf_counter() - looked_up
+                for result in block_results(model, directions, block, t_locals, dense):
+                    task.add(block.dict_keys, None, *result)
+
+        current, pieces = None, []
+        for batch in batches:
+            unit_col = batch.column(0).to_numpy()
+            cuts = [0, *(np.flatnonzero(unit_col[1:] != unit_col[:-1]) + 1).tolist(), len(unit_col)]
+            for lo, hi in zip(cuts[:-1], cuts[1:]):
+                if lo == hi:
+                    continue
+                unit = int(unit_col[lo])
+                if current is not None and unit != current:
+                    run_unit(current, pieces)
+                    pieces = []
+                current = unit
+                pieces.append(batch.slice(lo, hi - lo))
+        if current is not None:
+            run_unit(current, pieces)
+        payload_started = time.perf_counter()
+        records = list(task.payloads(n_buckets))
+        payload_seconds = time.perf_counter() - payload_started
         note_task_memory("join")
-        if not parts:
-            return pa.Table.from_batches([], schema=_stats_arrow_schema())
-        return pa.Table.from_batches([rows_batch(parts)])
+        values = [time.perf_counter() - started, seconds["lookup"], 0.0, 0.0, seconds["read"], payload_seconds]
+        for bucket, data in [*records, *timing_payloads(directions, values, n_buckets)]:
+            yield pa.RecordBatch.from_arrays([pa.array([bucket], pa.int32()), pa.array([data], pa.binary())],
+                                             names=["bucket", "payload"])
 
     return estep
 
 
-def _stats_arrow_schema() -> pa.Schema:
-    return pa.schema([("dir", pa.int8()), ("src", pa.int32()), ("tgt", pa.int32()),
-                      ("hi", pa.int64()), ("lo", pa.int64())])
+PAYLOAD_DDL = "bucket int, payload binary"
 
 
-def join_stats(spark, store, blocks_df, table_path: str, model, directions: tuple[str, ...],
-               dense: dict[str, dict]):
-    """E-step rows (``STATS_SCHEMA``) of one iteration with per-block parameter shipping."""
-    block_dict = block_dict_frame(spark, store, blocks_df)
-    params = params_frame(block_dict, spark.read.parquet(table_path))
-    fn = make_join_estep(model, directions, dense)
-    return (blocks_df.groupBy("block_id").cogroup(params.groupBy("block_id"))
-            .applyInArrow(fn, STATS_SCHEMA))
+def join_payloads(spark, store, units: list[tuple[str, int]], table_path: str, model, directions: tuple[str, ...],
+                  dense: dict[str, dict], *, n_tasks: int, n_buckets: int):
+    """The (bucket, payload) records of one iteration with per-unit parameter shipping, as an RDD (what
+    ``engine.mstep.reduce_and_write`` takes)."""
+    from spark_align.store import fsspec_url
+
+    keys_df, numbered = unit_keys_frame(spark, store, units)
+    params = params_frame(keys_df, spark.read.parquet(table_path))
+    fn = make_join_estep(model, directions, dense, blocks_url=fsspec_url(store.spark_path("encoded", "blocks")),
+                         units=numbered, n_buckets=n_buckets)
+    return (params.repartition(n_tasks, "unit").sortWithinPartitions("unit")
+            .mapInArrow(fn, PAYLOAD_DDL).rdd.map(lambda row: (row[0], row[1])))

@@ -33,17 +33,34 @@ def test_auto_rule_switches_at_the_documented_threshold():
         shipping.choose_shipping("scatter", 1, budget_mb)
 
 
-def test_local_probs_equal_the_broadcast_lookup():
-    """Scattering joined entries gives what the broadcast path's sorted lookup gives (floor where absent)."""
+def test_a_units_joined_entries_give_what_the_broadcast_lookup_gives():
+    """A unit's rows of the join (every unit key, with its table entries per direction or nulls where the
+    table has none, in any order) find a block's dictionary as the whole table does: the same
+    probabilities, bit for bit, and the floor where the table has no entry."""
+    import pyarrow as pa
+
     rng = np.random.default_rng(3)
-    dict_keys = np.unique(rng.integers(0, 2 ** 40, 200))
-    table_keys = np.sort(rng.choice(dict_keys, 120, replace=False))
-    table_probs = rng.uniform(0, 1, 120)
-    direct = tables.DirectionTable(table_keys, table_probs).local(dict_keys)
-    idx = np.searchsorted(dict_keys, table_keys)
-    got = shipping.local_probs(len(dict_keys), idx, np.zeros(120, np.int8), table_probs, ("forward",))
-    assert np.array_equal(got["forward"], direct)
-    assert np.sum(got["forward"] == tables.MIN_PROB) == 80
+    unit_keys = np.unique(rng.integers(0, 2 ** 40, 300))
+    whole = {}
+    rows = []
+    for d, direction in enumerate(("forward", "reverse")):
+        table_keys = np.sort(np.concatenate([rng.choice(unit_keys, 150 + 20 * d, replace=False),
+                                             rng.integers(2 ** 41, 2 ** 42, 50)]))  # keys of other units
+        table_probs = rng.uniform(0, 1, len(table_keys))
+        whole[direction] = tables.DirectionTable(table_keys, table_probs)
+        hit = np.isin(table_keys, unit_keys)
+        rows += [(int(k), d, float(p)) for k, p in zip(table_keys[hit], table_probs[hit])]
+    in_any = {k for k, _, _ in rows}
+    rows += [(int(k), None, None) for k in unit_keys if int(k) not in in_any]  # the left join's misses
+    rows = [rows[i] for i in rng.permutation(len(rows))]
+    params = pa.table({"unit": pa.array([7] * len(rows), pa.int32()), "key": pa.array([r[0] for r in rows], pa.int64()),
+                       "dir": pa.array([r[1] for r in rows], pa.int8()), "prob": pa.array([r[2] for r in rows])})
+    got = shipping.unit_tables(params, ("forward", "reverse"))
+    block_keys = np.sort(rng.choice(unit_keys, 200, replace=False))
+    for direction in ("forward", "reverse"):
+        want = whole[direction].local(block_keys)
+        assert np.array_equal(got[direction].local(block_keys), want)
+        assert 0 < np.sum(want == tables.MIN_PROB) < len(block_keys)
 
 
 def test_workers_read_the_reducers_files_with_their_buckets(tmp_path):
@@ -203,7 +220,7 @@ def test_join_and_broadcast_shipping_give_bit_identical_tables_and_pruning(spark
     for d in ("forward", "reverse"):
         assert (manifest(joined, "01-hmm", 1)["metrics"][d]["loglik"]
                 == manifest(base_broadcast, "01-hmm", 1)["metrics"][d]["loglik"])
-    assert os.path.exists(os.path.join(joined, "encoded", "block_dict", "_SUCCESS"))
+    assert os.path.exists(os.path.join(joined, "encoded", "unit_keys.json"))
 
     # pruning at 1e-2 drops entries: only those >= threshold stay, and the manifest says how many went
     threshold = 1e-2
