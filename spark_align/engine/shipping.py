@@ -18,7 +18,7 @@ each unit of work (one row group of encoded blocks, ``mstep.block_units``) --
 are written once per run under ``encoded/unit_keys`` (on first use, with the
 units they number in ``encoded/unit_keys.json``, written last). Per iteration::
 
-    params = unit_keys LEFT JOIN table ON key             -> (unit, key, dir, prob)
+    params = unit_keys LEFT JOIN table ON key     -> (unit, key, prob per direction)
     params.repartition(tasks, unit).sortWithinPartitions(unit).mapInArrow(E-step)
 
 The E-step task takes one unit's rows at a time, reads that unit's blocks
@@ -26,8 +26,7 @@ from Parquet itself (as the broadcast path does: the blocks never pass through
 the shuffle), finds each block's dictionary in the unit's entries (``MIN_PROB``
 where the table has none, as the broadcast lookup gives) and folds the counts of
 all its units into one sum per key before emitting them by reducer bucket.
-Memory per task: one unit's entries (about 25 bytes per unit key and
-direction) and blocks, and the task's folded counts; nothing table-sized
+Memory per task: one unit's entries (about 30 bytes per unit key) and blocks, and the task's folded counts; nothing table-sized
 anywhere, the driver included. The price is the join's shuffles every
 iteration (the unit keys and the table by key, then the joined entries by
 unit), which the broadcast path avoids.
@@ -49,7 +48,7 @@ import pyarrow as pa
 from spark_align.config import SHIPPINGS as SHIPPING_MODES
 from spark_align.engine.estep import _maybe_fail, note_task_memory
 from spark_align.engine.ingest import block_array
-from spark_align.engine.tables import DIRS, DirectionTable, keep_freed_memory
+from spark_align.engine.tables import DIRS, MIN_PROB, DirectionTable, keep_freed_memory
 
 BYTES_PER_ENTRY = 48  # per Python worker per entry on the whole-table path (see the module docstring)
 DEFAULT_BUDGET_MB = 768
@@ -129,31 +128,30 @@ def unit_keys(blocks_url: str):
     return fn
 
 
-def params_frame(unit_keys_df, table_df):
-    """(unit, key, dir, prob): every unit key with the table's entries for it (dir and prob null where the
-    table has none, so that every unit has rows)."""
+def params_frame(unit_keys_df, table_df, directions: tuple[str, ...]):
+    """(unit, key, <one probability column per direction>): every unit key with the table's entry for it
+    in each direction (null where the table has none; a left join, so that every unit has rows). The
+    table is first turned into one row per key: half the rows the join would otherwise give and send to
+    the E-step."""
     from pyspark.sql import functions as F
 
-    keyed = table_df.select("dir", (F.shiftleft(F.col("src").cast("long"), 32)
-                                    .bitwiseOR(F.col("tgt").cast("long"))).alias("key"), "prob")
-    return unit_keys_df.join(keyed, "key", "left").select("unit", "key", "dir", "prob")
+    key = F.shiftleft(F.col("src").cast("long"), 32).bitwiseOR(F.col("tgt").cast("long"))
+    by_key = table_df.groupBy(key.alias("key")).agg(
+        *(F.max(F.when(F.col("dir") == DIRS.index(d), F.col("prob"))).alias(d) for d in directions))
+    return unit_keys_df.join(by_key, "key", "left").select("unit", "key", *directions)
 
 
 def unit_tables(params: pa.Table, directions: tuple[str, ...]) -> dict[str, DirectionTable]:
     """One unit's joined entries as a sorted :class:`~spark_align.engine.tables.DirectionTable` per
     direction, which finds a block's dictionary in them as the broadcast path finds it in the whole
-    table."""
+    table (``MIN_PROB`` where the table has no entry)."""
     import pyarrow.compute as pc
 
     keys = params.column("key").to_numpy()
-    dirs = pc.fill_null(params.column("dir"), -1).to_numpy()
-    probs = pc.fill_null(params.column("prob"), 0.0).to_numpy()
-    out = {}
-    for direction in directions:
-        sel = np.flatnonzero(dirs == DIRS.index(direction))
-        order = sel[np.argsort(keys[sel], kind="stable")]
-        out[direction] = DirectionTable(np.ascontiguousarray(keys[order]), np.ascontiguousarray(probs[order]))
-    return out
+    order = np.argsort(keys, kind="stable")
+    sorted_keys = np.ascontiguousarray(keys[order])
+    return {d: DirectionTable(sorted_keys, pc.fill_null(params.column(d), MIN_PROB).to_numpy()[order])
+            for d in directions}
 
 
 def make_join_estep(model, directions: tuple[str, ...], dense: dict[str, dict], *, blocks_url: str,
@@ -226,7 +224,7 @@ def join_payloads(spark, store, units: list[tuple[str, int]], table_path: str, m
     from spark_align.store import fsspec_url
 
     keys_df, numbered = unit_keys_frame(spark, store, units)
-    params = params_frame(keys_df, spark.read.parquet(table_path))
+    params = params_frame(keys_df, spark.read.parquet(table_path), directions)
     fn = make_join_estep(model, directions, dense, blocks_url=fsspec_url(store.spark_path("encoded", "blocks")),
                          units=numbered, n_buckets=n_buckets)
     return (params.repartition(n_tasks, "unit").sortWithinPartitions("unit")

@@ -34,27 +34,22 @@ def test_auto_rule_switches_at_the_documented_threshold():
 
 
 def test_a_units_joined_entries_give_what_the_broadcast_lookup_gives():
-    """A unit's rows of the join (every unit key, with its table entries per direction or nulls where the
-    table has none, in any order) find a block's dictionary as the whole table does: the same
-    probabilities, bit for bit, and the floor where the table has no entry."""
+    """A unit's rows of the join (every unit key once, in any order, with the table's probability per
+    direction or null where the table has none) find a block's dictionary as the whole table does: the
+    same probabilities, bit for bit, and the floor where the table has no entry."""
     import pyarrow as pa
 
     rng = np.random.default_rng(3)
-    unit_keys = np.unique(rng.integers(0, 2 ** 40, 300))
-    whole = {}
-    rows = []
+    unit_keys = rng.permutation(np.unique(rng.integers(0, 2 ** 40, 300)))
+    whole, columns = {}, {}
     for d, direction in enumerate(("forward", "reverse")):
         table_keys = np.sort(np.concatenate([rng.choice(unit_keys, 150 + 20 * d, replace=False),
                                              rng.integers(2 ** 41, 2 ** 42, 50)]))  # keys of other units
         table_probs = rng.uniform(0, 1, len(table_keys))
         whole[direction] = tables.DirectionTable(table_keys, table_probs)
-        hit = np.isin(table_keys, unit_keys)
-        rows += [(int(k), d, float(p)) for k, p in zip(table_keys[hit], table_probs[hit])]
-    in_any = {k for k, _, _ in rows}
-    rows += [(int(k), None, None) for k in unit_keys if int(k) not in in_any]  # the left join's misses
-    rows = [rows[i] for i in rng.permutation(len(rows))]
-    params = pa.table({"unit": pa.array([7] * len(rows), pa.int32()), "key": pa.array([r[0] for r in rows], pa.int64()),
-                       "dir": pa.array([r[1] for r in rows], pa.int8()), "prob": pa.array([r[2] for r in rows])})
+        prob_of = dict(zip(table_keys.tolist(), table_probs.tolist()))
+        columns[direction] = pa.array([prob_of.get(k) for k in unit_keys.tolist()], pa.float64())
+    params = pa.table({"unit": pa.array([7] * len(unit_keys), pa.int32()), "key": pa.array(unit_keys), **columns})
     got = shipping.unit_tables(params, ("forward", "reverse"))
     block_keys = np.sort(rng.choice(unit_keys, 200, replace=False))
     for direction in ("forward", "reverse"):
