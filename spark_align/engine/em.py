@@ -32,12 +32,17 @@ TASKS_PER_CORE_CONF = "spark.spark_align.estepTasksPerCore"
 
 def tasks_per_core(value: str) -> int:
     """The E-step tasks per core a ``TASKS_PER_CORE_CONF`` value asks for (a whole number, at least 1)."""
+    return whole_number_setting(TASKS_PER_CORE_CONF, value)
+
+
+def whole_number_setting(name: str, value: str) -> int:
+    """A Spark setting of ours that must be a whole number of at least 1; ConfigError otherwise."""
     try:
         n = int(value)
     except ValueError:
         n = 0
     if n < 1:
-        raise ConfigError(f"{TASKS_PER_CORE_CONF} must be a whole number of at least 1, not {value!r}")
+        raise ConfigError(f"{name} must be a whole number of at least 1, not {value!r}")
     return n
 
 
@@ -139,8 +144,10 @@ class Trainer:
         per_core = tasks_per_core(self.spark.conf.get(TASKS_PER_CORE_CONF, str(TASKS_PER_CORE)))
         n_tasks = max(1, min(len(units), per_core * sc.defaultParallelism))
         if path == "join":
+            flush_keys = whole_number_setting(shipping.TASK_KEYS_CONF, self.spark.conf.get(
+                shipping.TASK_KEYS_CONF, str(shipping.TASK_KEYS)))
             pairs = shipping.join_payloads(self.spark, self.store, units, state.table_path, model, self.directions,
-                                           state.dense, n_tasks=n_tasks, n_buckets=n_parts)
+                                           state.dense, n_tasks=n_tasks, n_buckets=n_parts, flush_keys=flush_keys)
         else:
             source = tables_mod.table_source(state.table_path, self.directions, src_v, tgt_v)
             estep = make_estep(model, self.directions, source, state.dense,

@@ -53,6 +53,10 @@ from spark_align.engine.tables import DIRS, MIN_PROB, DirectionTable, keep_freed
 BYTES_PER_ENTRY = 48  # per Python worker per entry on the whole-table path (see the module docstring)
 DEFAULT_BUDGET_MB = 768
 UNIT_KEYS = ("encoded", "unit_keys")
+# A join-path E-step task sends its folded counts on whenever they hold this many distinct keys (34-69
+# bytes each, plus their encoding), so that its memory does not grow with its share of the corpus.
+TASK_KEYS = 8_000_000
+TASK_KEYS_CONF = "spark.spark_align.joinTaskKeys"
 
 
 def choose_shipping(mode: str, n_entries: int | None, budget_mb: float) -> str:
@@ -155,10 +159,11 @@ def unit_tables(params: pa.Table, directions: tuple[str, ...]) -> dict[str, Dire
 
 
 def make_join_estep(model, directions: tuple[str, ...], dense: dict[str, dict], *, blocks_url: str,
-                    units: list[tuple[str, int]], n_buckets: int):
+                    units: list[tuple[str, int]], n_buckets: int, flush_keys: int = TASK_KEYS):
     """The ``mapInArrow`` E-step of the join path: a task's params rows, sorted by unit -> (bucket,
-    payload) records of all its units' counts, folded (``engine.mstep``), and the timing scalars of
-    ``engine.estep``'s module docstring (3, 4, 7 and 8)."""
+    payload) records of its units' counts, folded (``engine.mstep``) and sent on whenever they hold
+    ``flush_keys`` distinct keys and at the end, and the timing scalars of ``engine.estep``'s module
+    docstring (3, 4, 7 and 8)."""
 
     def estep(batches):
         import fsspec
@@ -170,10 +175,22 @@ def make_join_estep(model, directions: tuple[str, ...], dense: dict[str, dict], 
         keep_freed_memory()
         started = time.perf_counter()
         fs, _root = fsspec.core.url_to_fs(blocks_url)
-        task = mstep.TaskCounts({})
-        seconds = {"lookup": 0.0, "read": 0.0}
+        folded = [mstep.TaskCounts({})]  # the counts not sent yet
+        seconds = {"lookup": 0.0, "read": 0.0, "payload": 0.0}
 
-        def run_unit(unit: int, pieces: list[pa.RecordBatch]) -> None:
+        def send(records):
+            for bucket, data in records:
+                yield pa.RecordBatch.from_arrays([pa.array([bucket], pa.int32()), pa.array([data], pa.binary())],
+                                                 names=["bucket", "payload"])
+
+        def flush():
+            payload_started = time.perf_counter()
+            records = list(folded[0].payloads(n_buckets))
+            folded[0] = mstep.TaskCounts({})
+            seconds["payload"] += time.perf_counter() - payload_started
+            return records
+
+        def run_unit(unit: int, pieces: list[pa.RecordBatch]):
             looked_up = time.perf_counter()
             found_in = unit_tables(pa.Table.from_batches(pieces), directions)
             seconds["lookup"] += time.perf_counter() - looked_up
@@ -185,31 +202,29 @@ def make_join_estep(model, directions: tuple[str, ...], dense: dict[str, dict], 
                 t_locals = {d: found_in[d].local(block.dict_keys) for d in directions}
                 seconds["lookup"] += time.perf_counter() - looked_up
                 for result in block_results(model, directions, block, t_locals, dense):
-                    task.add(block.dict_keys, None, *result)
+                    folded[0].add(block.dict_keys, None, *result)
+                if folded[0].buffer.n_keys >= flush_keys:
+                    yield from send(flush())
 
         current, pieces = None, []
         for batch in batches:
+            if batch.num_rows == 0:
+                continue
             unit_col = batch.column(0).to_numpy()
             cuts = [0, *(np.flatnonzero(unit_col[1:] != unit_col[:-1]) + 1).tolist(), len(unit_col)]
             for lo, hi in zip(cuts[:-1], cuts[1:]):
-                if lo == hi:
-                    continue
                 unit = int(unit_col[lo])
                 if current is not None and unit != current:
-                    run_unit(current, pieces)
+                    yield from run_unit(current, pieces)
                     pieces = []
                 current = unit
                 pieces.append(batch.slice(lo, hi - lo))
         if current is not None:
-            run_unit(current, pieces)
-        payload_started = time.perf_counter()
-        records = list(task.payloads(n_buckets))
-        payload_seconds = time.perf_counter() - payload_started
+            yield from run_unit(current, pieces)
+        records = flush()
         note_task_memory("join")
-        values = [time.perf_counter() - started, seconds["lookup"], 0.0, 0.0, seconds["read"], payload_seconds]
-        for bucket, data in [*records, *timing_payloads(directions, values, n_buckets)]:
-            yield pa.RecordBatch.from_arrays([pa.array([bucket], pa.int32()), pa.array([data], pa.binary())],
-                                             names=["bucket", "payload"])
+        values = [time.perf_counter() - started, seconds["lookup"], 0.0, 0.0, seconds["read"], seconds["payload"]]
+        yield from send([*records, *timing_payloads(directions, values, n_buckets)])
 
     return estep
 
@@ -218,7 +233,7 @@ PAYLOAD_DDL = "bucket int, payload binary"
 
 
 def join_payloads(spark, store, units: list[tuple[str, int]], table_path: str, model, directions: tuple[str, ...],
-                  dense: dict[str, dict], *, n_tasks: int, n_buckets: int):
+                  dense: dict[str, dict], *, n_tasks: int, n_buckets: int, flush_keys: int = TASK_KEYS):
     """The (bucket, payload) records of one iteration with per-unit parameter shipping, as an RDD (what
     ``engine.mstep.reduce_and_write`` takes)."""
     from spark_align.store import fsspec_url
@@ -226,6 +241,6 @@ def join_payloads(spark, store, units: list[tuple[str, int]], table_path: str, m
     keys_df, numbered = unit_keys_frame(spark, store, units)
     params = params_frame(keys_df, spark.read.parquet(table_path), directions)
     fn = make_join_estep(model, directions, dense, blocks_url=fsspec_url(store.spark_path("encoded", "blocks")),
-                         units=numbered, n_buckets=n_buckets)
+                         units=numbered, n_buckets=n_buckets, flush_keys=flush_keys)
     return (params.repartition(n_tasks, "unit").sortWithinPartitions("unit")
             .mapInArrow(fn, PAYLOAD_DDL).rdd.map(lambda row: (row[0], row[1])))

@@ -232,6 +232,11 @@ class HashCounts:
             (max(16, 1 << int(capacity - 1).bit_length()), 3), np.int64)
         self._used = 0
 
+    @property
+    def n_keys(self) -> int:
+        """Distinct keys held so far."""
+        return self._used
+
     def release(self) -> np.ndarray:
         """The table's slots emptied, for a new :class:`HashCounts` (this one holds nothing after).
         Zeroing memory already in use (0.04 s for 16M slots) is much cheaper than the page faults of

@@ -173,6 +173,40 @@ def _retrain(spark, base_run: str, new_run: str, cfg: RunConfig) -> dict[str, ob
     return _tables_by_iteration(new_run)
 
 
+def _join_task_payloads(run_dir: str, table, flush_keys: int):
+    """One join-path E-step task over every unit of ``run_dir`` with ``table``, in-process: (its payload
+    records, the lexical sums they add up to as (keys, hi, lo))."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    from spark_align.engine import mstep
+    from spark_align.kernels import counts
+    from spark_align.models.ibm1 import IBM1
+
+    store = RunStore(run_dir)
+    units = mstep.block_units(store)
+    blocks_url = store.spark_path("encoded", "blocks")
+    batch = pa.RecordBatch.from_arrays([pa.array(range(len(units)), pa.int32()), pa.array([u[0] for u in units]),
+                                        pa.array([u[1] for u in units], pa.int32())], names=["unit", "path", "row_group"])
+    params = pa.Table.from_batches(list(shipping.unit_keys(blocks_url)(iter([batch]))))
+    key = pc.bit_wise_or(pc.shift_left(table.column("src").cast(pa.int64()), 32), table.column("tgt").cast(pa.int64()))
+    for d, direction in enumerate(("forward", "reverse")):
+        mine = pc.equal(table.column("dir"), d)
+        params = params.join(pa.table({"key": key.filter(mine), direction: table.column("prob").filter(mine)}),
+                             "key", join_type="left outer")
+    params = params.sort_by("unit")
+    model = IBM1()
+    estep = shipping.make_join_estep(model, ("forward", "reverse"), {d: model.init_dense(None) for d in ("forward", "reverse")},
+                                     blocks_url=blocks_url, units=units, n_buckets=3, flush_keys=flush_keys)
+    records = [b.column(1)[0].as_py() for b in estep(iter(params.to_batches(max_chunksize=500)))]
+    buffer = counts.CountBuffer()
+    for data in records:
+        buffer.add_payload(data)
+    keys, hi, lo = buffer.result()
+    lexical = ((keys >> 32) & np.int64(2 ** 30 - 1)) >= 2  # not the dense statistics or the scalars
+    return records, (keys[lexical], hi[lexical], lo[lexical])
+
+
 @pytest.mark.slow
 def test_join_and_broadcast_shipping_give_bit_identical_tables_and_pruning(spark, tmp_path):
     generated = synthetic.generate(400, seed=5, src_vocab=300, tgt_vocab=300).select(["source", "target"])
@@ -216,6 +250,22 @@ def test_join_and_broadcast_shipping_give_bit_identical_tables_and_pruning(spark
         assert (manifest(joined, "01-hmm", 1)["metrics"][d]["loglik"]
                 == manifest(base_broadcast, "01-hmm", 1)["metrics"][d]["loglik"])
     assert os.path.exists(os.path.join(joined, "encoded", "unit_keys.json"))
+
+    # A join task whose counts reach joinTaskKeys distinct keys sends them on and starts again: more
+    # payloads, the same sums (in-process, over the units' joined entries); and through Spark, with the
+    # setting at a few hundred keys, the same tables bit for bit.
+    sent = {limit: _join_task_payloads(base, want["00-ibm1/1"], limit) for limit in (300, 10 ** 9)}
+    assert len(sent[300][0]) > len(sent[10 ** 9][0]) + 10
+    for a, b in zip(sent[300][1], sent[10 ** 9][1]):
+        assert np.array_equal(a, b)
+    spark.conf.set(shipping.TASK_KEYS_CONF, "300")
+    try:
+        flushed = _retrain(spark, base, str(tmp_path / "join-flushed"), dataclasses.replace(cfg, shipping="join"))
+    finally:
+        spark.conf.unset(shipping.TASK_KEYS_CONF)
+    assert sorted(flushed) == sorted(want) and all(flushed[k].equals(want[k]) for k in want)
+    with pytest.raises(ConfigError, match="joinTaskKeys must be a whole number"):
+        em.whole_number_setting(shipping.TASK_KEYS_CONF, "-3")
 
     # pruning at 1e-2 drops entries: only those >= threshold stay, and the manifest says how many went
     threshold = 1e-2
