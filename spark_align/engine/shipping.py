@@ -26,8 +26,10 @@ from Parquet itself (as the broadcast path does: the blocks never pass through
 the shuffle), finds each block's dictionary in the unit's entries (``MIN_PROB``
 where the table has none, as the broadcast lookup gives) and folds the counts of
 all its units into one sum per key before emitting them by reducer bucket.
-Memory per task: one unit's entries (about 30 bytes per unit key) and blocks, and the task's folded counts; nothing table-sized
-anywhere, the driver included. The price is the join's shuffles every
+Memory per task: one unit's entries (about 30 bytes per unit key) and blocks,
+and the task's folded counts, which it sends on whenever they hold
+``TASK_KEYS`` distinct keys (``spark.spark_align.joinTaskKeys``); nothing
+table-sized anywhere, the driver included. The price is the join's shuffles every
 iteration (the unit keys and the table by key, then the joined entries by
 unit), which the broadcast path avoids.
 

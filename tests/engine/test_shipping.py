@@ -186,17 +186,19 @@ def _join_task_payloads(run_dir: str, table, flush_keys: int):
     store = RunStore(run_dir)
     units = mstep.block_units(store)
     blocks_url = store.spark_path("encoded", "blocks")
-    batch = pa.RecordBatch.from_arrays([pa.array(range(len(units)), pa.int32()), pa.array([u[0] for u in units]),
-                                        pa.array([u[1] for u in units], pa.int32())], names=["unit", "path", "row_group"])
+    batch = pa.RecordBatch.from_arrays(
+        [pa.array(range(len(units)), pa.int32()), pa.array([u[0] for u in units]),
+         pa.array([u[1] for u in units], pa.int32())], names=["unit", "path", "row_group"])
     params = pa.Table.from_batches(list(shipping.unit_keys(blocks_url)(iter([batch]))))
-    key = pc.bit_wise_or(pc.shift_left(table.column("src").cast(pa.int64()), 32), table.column("tgt").cast(pa.int64()))
+    src, tgt = (table.column(name).cast(pa.int64()) for name in ("src", "tgt"))
+    key = pc.bit_wise_or(pc.shift_left(src, 32), tgt)
     for d, direction in enumerate(("forward", "reverse")):
         mine = pc.equal(table.column("dir"), d)
         params = params.join(pa.table({"key": key.filter(mine), direction: table.column("prob").filter(mine)}),
                              "key", join_type="left outer")
     params = params.sort_by("unit")
-    model = IBM1()
-    estep = shipping.make_join_estep(model, ("forward", "reverse"), {d: model.init_dense(None) for d in ("forward", "reverse")},
+    model, directions = IBM1(), ("forward", "reverse")
+    estep = shipping.make_join_estep(model, directions, {d: model.init_dense(None) for d in directions},
                                      blocks_url=blocks_url, units=units, n_buckets=3, flush_keys=flush_keys)
     records = [b.column(1)[0].as_py() for b in estep(iter(params.to_batches(max_chunksize=500)))]
     buffer = counts.CountBuffer()
