@@ -128,15 +128,32 @@ def _bin(pos, length, cap):  # pragma: no cover - compiled; position_bin for one
     return (pos - 1) * cap // length + 1 if length > cap else pos
 
 
+@njit(cache=True, nogil=True, inline="always")
+def _longest(cond_len):  # pragma: no cover - compiled; at least 1, for scratch arrays of max_l + 1
+    max_l = 1
+    for p in range(len(cond_len)):
+        max_l = max(max_l, cond_len[p])
+    return max_l
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _bin_sizes(l, cap, size):  # pragma: no cover - compiled; size[i] = bin_size of position i = 1..l
+    for i in range(1, l + 1):
+        if l > cap:
+            b = _bin(i, l, cap)
+            size[i] = -(-(b * l) // cap) + (-((b - 1) * l)) // cap  # two ceilings
+        else:
+            size[i] = 1
+
+
 @njit(cache=True, nogil=True)
 def _e_step_compiled(cond_len, gen_len, cell_offsets, grid, gen_major, t, table, offsets, cap, counts,
                      table_counts):  # pragma: no cover - compiled
     # Model 1's loop with t(f_j|e_i) times a(i|j,l,m) = table[entry] / bin size; the same operations in
-    # the same order as the numpy rendering (posteriors, then bincounts in link order). The grid is
+    # the same order as the numpy link formulas (tests/kernels/ibm2_links.py: posteriors, then bincounts
+    # in link order). The grid is
     # read as stored, in either order (``View.grid``, ``ragged.grid_steps``).
-    max_l = 1
-    for p in range(len(cond_len)):
-        max_l = max(max_l, cond_len[p])
+    max_l = _longest(cond_len)
     score = np.empty(max_l + 1)
     entry = np.empty(max_l + 1, np.int64)
     size = np.ones(max_l + 1, np.int64)
@@ -146,12 +163,7 @@ def _e_step_compiled(cond_len, gen_len, cell_offsets, grid, gen_major, t, table,
         base = cell_offsets[p]
         cond_step, gen_step = grid_steps(l, m, gen_major)
         lc, mc = min(l, cap), min(m, cap)
-        for i in range(1, l + 1):
-            if l > cap:
-                b = _bin(i, l, cap)
-                size[i] = -(-(b * l) // cap) + (-((b - 1) * l)) // cap  # bin_size: two ceilings
-            else:
-                size[i] = 1
+        _bin_sizes(l, cap, size)
         for j in range(1, m + 1):
             row = offsets[lc, mc] + (_bin(j, m, cap) - 1) * (lc + 1)
             col = base + j * gen_step
@@ -207,11 +219,9 @@ def diag_e_step(view: View, t: np.ndarray, p_null: float, lam: float, cap: int,
 @njit(cache=True, nogil=True)
 def _diag_e_step_compiled(cond_len, gen_len, cell_offsets, grid, gen_major, t, p_null, lam, cap, counts, mass,
                           out):  # pragma: no cover - compiled
-    # a(i|j,l,m) as in diag_align_probs, per token: p0 for NULL, (1 - p0) exp(lam h) / Z for real i; the
-    # grid read as _e_step_compiled reads it.
-    max_l = 1
-    for p in range(len(cond_len)):
-        max_l = max(max_l, cond_len[p])
+    # a(i|j,l,m) as in the module docstring, per token: p0 for NULL, (1 - p0) exp(lam h) / Z for real i;
+    # the grid read as _e_step_compiled reads it.
+    max_l = _longest(cond_len)
     score = np.empty(max_l + 1)
     h = np.zeros(max_l + 1)
     w = np.empty(max_l + 1)
@@ -291,9 +301,7 @@ def _decode_compiled(cond_len, gen_len, cell_offsets, grid, gen_major, t, diag, 
     # Links in gen_cells order (token-major, cond positions 0..l); each link's score as the E-step forms
     # it (classic: t * (table[entry] / bin size); diagonal: t * p0 for NULL, t * ((1 - p0) w / Z) for
     # real i), post = score / (the token's scores summed in order), per pair the sum of log denominators.
-    max_l = 1
-    for p in range(len(cond_len)):
-        max_l = max(max_l, cond_len[p])
+    max_l = _longest(cond_len)
     score = np.empty(max_l + 1)
     w = np.empty(max_l + 1)
     size = np.ones(max_l + 1, np.int64)
@@ -304,12 +312,7 @@ def _decode_compiled(cond_len, gen_len, cell_offsets, grid, gen_major, t, diag, 
         cond_step, gen_step = grid_steps(l, m, gen_major)
         lc, mc = min(l, cap), min(m, cap)
         if not diag:
-            for i in range(1, l + 1):
-                if l > cap:
-                    b = _bin(i, l, cap)
-                    size[i] = -(-(b * l) // cap) + (-((b - 1) * l)) // cap
-                else:
-                    size[i] = 1
+            _bin_sizes(l, cap, size)
         ll = 0.0
         for j in range(1, m + 1):
             col = base + j * gen_step
