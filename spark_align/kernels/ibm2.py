@@ -151,8 +151,7 @@ def _e_step_compiled(cond_len, gen_len, cell_offsets, grid, gen_major, t, table,
                      table_counts):  # pragma: no cover - compiled
     # Model 1's loop with t(f_j|e_i) times a(i|j,l,m) = table[entry] / bin size; the same operations in
     # the same order as the numpy link formulas (tests/kernels/ibm2_links.py: posteriors, then bincounts
-    # in link order). The grid is
-    # read as stored, in either order (``View.grid``, ``ragged.grid_steps``).
+    # in link order). The grid is read as stored, in either order (``View.grid``, ``ragged.grid_steps``).
     max_l = _longest(cond_len)
     score = np.empty(max_l + 1)
     entry = np.empty(max_l + 1, np.int64)
