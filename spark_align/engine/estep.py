@@ -12,13 +12,13 @@ with the entries its units need, received through the join. Rows are
 * ``src == -1``: entry ``tgt`` of the model's dense statistics vector;
 * ``src == -2``: scalars (``tgt == 0``: log-likelihood; ``tgt == 1``: seconds spent in the
   model kernel, for the share-outside-the-kernel figure; ``tgt == 2``: links processed;
-  whole-table path only, per task: ``tgt == 3`` task seconds, of which ``tgt == 4`` finding the
-  blocks' entries in the table (the lookup), ``5`` adding counts into the task's accumulators,
-  ``6`` loading the table (first task of a Python worker per iteration), ``7`` reading blocks and
-  ``8`` preparing the task's output records (on the join path, 4, 7 and 8 only); per direction,
-  ``9`` dictionary keys the lookup had
-  to search for (no usable stored hint, ``engine.hints``), ``10`` keys it looked up and ``11`` keys
-  whose stored positions it took as they are).
+  per task: ``tgt == 3`` task seconds, of which ``tgt == 4`` finding the blocks' entries in the
+  table (the lookup), ``5`` adding counts into the task's accumulators, ``6`` loading the table
+  (first task of a Python worker per iteration), ``7`` reading blocks and ``8`` preparing the
+  task's output records (the join path's tasks leave 5 and 6 at zero); whole-table path only, per
+  direction: ``9`` dictionary keys the lookup had to search for (no usable stored hint,
+  ``engine.hints``), ``10`` keys it looked up and ``11`` keys whose stored positions it took as they
+  are).
 
 Counts leave the task as 64-bit fixed point in two parts (``v = hi / 2^20 +
 lo / 2^50``, error below 1e-15 per value) and are summed as integers.
