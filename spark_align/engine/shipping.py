@@ -55,6 +55,7 @@ from spark_align.engine.tables import DIRS, MIN_PROB, DirectionTable, keep_freed
 BYTES_PER_ENTRY = 48  # per Python worker per entry on the whole-table path (see the module docstring)
 DEFAULT_BUDGET_MB = 768
 UNIT_KEYS = ("encoded", "unit_keys")
+UNIT_KEYS_COMMIT = "encoded/unit_keys.json"  # the units the keys number, written last
 # A join-path E-step task sends its folded counts on whenever they hold this many distinct keys (34-69
 # bytes each, plus their encoding), so that its memory does not grow with its share of the corpus.
 TASK_KEYS = 8_000_000
@@ -99,8 +100,8 @@ def unit_keys_frame(spark, store, units: list[tuple[str, int]]):
     from spark_align.store import fsspec_url
 
     path = store.spark_path(*UNIT_KEYS)
-    if store.exists(*UNIT_KEYS[:-1], UNIT_KEYS[-1] + ".json"):
-        listed = store.read_json("/".join(UNIT_KEYS) + ".json")["units"]
+    if store.exists(UNIT_KEYS_COMMIT):
+        listed = store.read_json(UNIT_KEYS_COMMIT)["units"]
         return spark.read.parquet(path), [(store.fsspec_path("encoded", "blocks", name), rg) for name, rg in listed]
     sc = spark.sparkContext
     rows = [(i, path_, rg) for i, (path_, rg) in enumerate(units)]
@@ -108,8 +109,7 @@ def unit_keys_frame(spark, store, units: list[tuple[str, int]]):
         "unit int, path string, row_group int")
     units_df.mapInArrow(unit_keys(fsspec_url(store.spark_path("encoded", "blocks"))),
                         UNIT_KEYS_SCHEMA).write.mode("overwrite").parquet(path)
-    store.write_json("/".join(UNIT_KEYS) + ".json",
-                     {"units": [[posixpath.basename(path_), rg] for path_, rg in units]})
+    store.write_json(UNIT_KEYS_COMMIT, {"units": [[posixpath.basename(path_), rg] for path_, rg in units]})
     return spark.read.parquet(path), units
 
 
