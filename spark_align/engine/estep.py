@@ -15,7 +15,7 @@ with the entries its units need, received through the join. Rows are
   per task: ``tgt == 3`` task seconds, of which ``tgt == 4`` finding the blocks' entries in the
   table (the lookup), ``5`` adding counts into the task's accumulators, ``6`` loading the table
   (first task of a Python worker per iteration), ``7`` reading blocks and ``8`` preparing the
-  task's output records (the join path's tasks leave 5 and 6 at zero); whole-table path only, per
+  task's output records (the join path's tasks leave 6 at zero); whole-table path only, per
   direction: ``9`` dictionary keys the lookup had to search for (no usable stored hint,
   ``engine.hints``), ``10`` keys it looked up and ``11`` keys whose stored positions it took as they
   are).

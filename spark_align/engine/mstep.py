@@ -117,8 +117,19 @@ class TaskCounts:
             touched.fill(False)
             worker_scratch()[("spare accumulators", d)] = (acc, touched)
         self.acc = {}
+        slots = self.buffer.release()
         if self.reuse:
-            worker_scratch()[_SPARE_SLOTS] = self.buffer.release()
+            worker_scratch()[_SPARE_SLOTS] = slots
+
+    def rows(self) -> list[tuple[np.ndarray, np.ndarray, np.ndarray]]:
+        """Every count added so far as (row key, hi, lo) runs of ascending keys: the lexical counts of
+        every direction's accumulators in one run (directions order the keys first), the rest in
+        another; afterwards the accumulators are empty again, as after :meth:`payloads`."""
+        lexical = [counts.touched_rows(touched, keys, d, acc) for d, (acc, touched, keys) in sorted(self.acc.items())]
+        runs = [tuple(np.concatenate(parts) for parts in zip(*lexical))] if lexical else []
+        runs.append(self.buffer.result())
+        self._release()
+        return runs
 
     def payloads(self, n_buckets: int):
         """(bucket, bytes) records: every count of this task, one record per non-empty bucket."""

@@ -25,10 +25,13 @@ The E-step task takes one unit's rows at a time, reads that unit's blocks
 from Parquet itself (as the broadcast path does: the blocks never pass through
 the shuffle), finds each block's dictionary in the unit's entries (``MIN_PROB``
 where the table has none, as the broadcast lookup gives) and folds the counts of
-all its units into one sum per key before emitting them by reducer bucket.
-Memory per task: one unit's entries (about 30 bytes per unit key) and blocks,
-and the task's folded counts, which it sends on whenever they hold
-``TASK_KEYS`` distinct keys (``spark.spark_align.joinTaskKeys``); nothing
+all its units into one sum per key before emitting them by reducer bucket:
+a unit's counts go into accumulators aligned with its entries (as the broadcast
+path's go into the whole table's), and leave them as sorted runs, which the
+task merges. Memory per task: one unit's entries and accumulators (about 65
+bytes per unit key) and blocks, and the task's folded counts, which it sends on
+whenever they may hold ``TASK_KEYS`` distinct keys
+(``spark.spark_align.joinTaskKeys``); nothing
 table-sized anywhere, the driver included. The price is the join's shuffles every
 iteration (the unit keys and the table by key, then the joined entries by
 unit), which the broadcast path avoids.
@@ -56,8 +59,9 @@ BYTES_PER_ENTRY = 48  # per Python worker per entry on the whole-table path (see
 DEFAULT_BUDGET_MB = 768
 UNIT_KEYS = ("encoded", "unit_keys")
 UNIT_KEYS_COMMIT = "encoded/unit_keys.json"  # the units the keys number, written last
-# A join-path E-step task sends its folded counts on whenever they hold this many distinct keys (34-69
-# bytes each, plus their encoding), so that its memory does not grow with its share of the corpus.
+# A join-path E-step task sends its folded counts on whenever they may hold this many distinct keys (24
+# bytes each, 48 while they are merged, plus their encoding), so that its memory does not grow with its
+# share of the corpus.
 TASK_KEYS = 8_000_000
 TASK_KEYS_CONF = "spark.spark_align.joinTaskKeys"
 
@@ -168,50 +172,71 @@ def unit_tables(params: pa.Table, directions: tuple[str, ...]) -> dict[str, Dire
 def make_join_estep(model, directions: tuple[str, ...], dense: dict[str, dict], *, blocks_url: str,
                     units: list[tuple[str, int]], n_buckets: int, flush_keys: int = TASK_KEYS):
     """The ``mapInArrow`` E-step of the join path: a task's params rows, sorted by unit -> (bucket,
-    payload) records of its units' counts, folded (``engine.mstep``) and sent on whenever they hold
+    payload) records of its units' counts, folded (``engine.mstep``) and sent on whenever they may hold
     ``flush_keys`` distinct keys and at the end, and the timing scalars of ``engine.estep``'s module
-    docstring (3, 4, 7 and 8)."""
+    docstring (3, 4, 5, 7 and 8).
+
+    A unit's counts are added into accumulators aligned with its entries (found once per block for
+    both directions, as the broadcast path adds into the whole table's) and leave them as sorted runs,
+    which the task's :class:`~spark_align.kernels.counts.CountBuffer` merges."""
 
     def estep(batches):
         import fsspec
 
         from spark_align.engine import mstep
         from spark_align.engine.estep import block_results, read_blocks, timing_payloads
+        from spark_align.kernels import counts, lookup
 
         _maybe_fail()
         keep_freed_memory()
         started = time.perf_counter()
         fs, _root = fsspec.core.url_to_fs(blocks_url)
-        folded = [mstep.TaskCounts({})]  # the counts not sent yet
-        seconds = {"lookup": 0.0, "read": 0.0, "payload": 0.0}
+        folded = counts.CountBuffer()  # the counts not sent yet
+        seconds = {"lookup": 0.0, "add": 0.0, "read": 0.0, "payload": 0.0}
 
         def send(records):
             for bucket, data in records:
                 yield pa.RecordBatch.from_arrays([pa.array([bucket], pa.int32()), pa.array([data], pa.binary())],
                                                  names=["bucket", "payload"])
 
+        def fold(task: mstep.TaskCounts) -> None:
+            added = time.perf_counter()
+            for run in task.rows():
+                folded.add(*run)
+            seconds["add"] += time.perf_counter() - added
+
         def flush():
+            nonlocal folded
             payload_started = time.perf_counter()
-            records = list(folded[0].payloads(n_buckets))
-            folded[0] = mstep.TaskCounts({})
+            records = list(mstep.payloads(folded, n_buckets))
+            folded = counts.CountBuffer()
             seconds["payload"] += time.perf_counter() - payload_started
             return records
 
         def run_unit(unit: int, pieces: list[pa.RecordBatch]):
             looked_up = time.perf_counter()
-            found_in = unit_tables(pa.Table.from_batches(pieces), directions)
+            entries = unit_tables(pa.Table.from_batches(pieces), directions)
+            keys = entries[directions[0]].keys  # the same sorted keys in every direction
             seconds["lookup"] += time.perf_counter() - looked_up
             read_started = time.perf_counter()
             blocks = read_blocks(fs, *units[unit], with_keys=True)
             seconds["read"] += time.perf_counter() - read_started
+            task, pending = mstep.TaskCounts(entries), 0
             for block in blocks:
                 looked_up = time.perf_counter()
-                t_locals = {d: found_in[d].local(block.dict_keys) for d in directions}
+                found = lookup.positions(keys, block.dict_keys)
+                t_locals = {d: np.where(found[1], entries[d].probs[found[0]], MIN_PROB) for d in directions}
                 seconds["lookup"] += time.perf_counter() - looked_up
                 for result in block_results(model, directions, block, t_locals, dense):
-                    folded[0].add(block.dict_keys, None, *result)
-                if folded[0].buffer.n_keys >= flush_keys:
+                    added = time.perf_counter()
+                    task.add(block.dict_keys, found, *result)
+                    seconds["add"] += time.perf_counter() - added
+                pending += len(block.dict_keys) * len(directions)
+                if folded.max_keys + pending >= flush_keys:
+                    fold(task)
+                    pending = 0
                     yield from send(flush())
+            fold(task)
 
         current, pieces = None, []
         for batch in batches:
@@ -230,7 +255,8 @@ def make_join_estep(model, directions: tuple[str, ...], dense: dict[str, dict], 
             yield from run_unit(current, pieces)
         records = flush()
         note_task_memory("join")
-        values = [time.perf_counter() - started, seconds["lookup"], 0.0, 0.0, seconds["read"], seconds["payload"]]
+        values = [time.perf_counter() - started, seconds["lookup"], seconds["add"], 0.0, seconds["read"],
+                  seconds["payload"]]
         yield from send([*records, *timing_payloads(directions, values, n_buckets)])
 
     return estep

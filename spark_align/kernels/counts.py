@@ -133,9 +133,15 @@ class CountBuffer:
             self._payload_rows += rows
             self._grew(rows)
 
+    @property
+    def max_keys(self) -> int:
+        """At most this many distinct keys are held: the last fold's, and one per row added since."""
+        return self._folded + self._pending
+
     def _grew(self, rows: int) -> None:
         self._pending += rows
-        if self._pending > max(self.compact_rows, self._folded):
+        # more runs than a fold merges directly would make it sort everything
+        if self._pending > max(self.compact_rows, self._folded) or len(self._parts) >= MERGE_RUNS:
             self._fold()
 
     def _fold(self) -> None:
@@ -638,6 +644,15 @@ def encode_touched(touched: np.ndarray, table_keys: np.ndarray, d: int, n_bucket
     # the touched positions first, vectorised (10% faster than a branch per table entry in the passes)
     args = (np.flatnonzero(touched), table_keys, int(d), bucket_of, shift, np.ascontiguousarray(acc, np.int64))
     return _segments_by_bucket(lambda rows, at, out, write: _touched_pass(*args, rows, at, out, write), n_buckets)
+
+
+def touched_rows(touched: np.ndarray, table_keys: np.ndarray, d: int,
+                 acc: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Direction ``d``'s rows ``(row key of table_keys[p], acc[p, 0], acc[p, 1])`` for every table
+    position ``p`` where ``touched[p]``, keys ascending (the rows :func:`encode_touched` encodes)."""
+    index = np.flatnonzero(touched)
+    shift = (np.int64(d) << np.int64(62)) + (np.int64(2) << np.int64(32))  # table key -> row key
+    return np.asarray(table_keys, np.int64)[index] + shift, acc[index, 0], acc[index, 1]
 
 
 @njit(cache=True, nogil=True, inline="always")

@@ -161,18 +161,25 @@ def test_table_aligned_task_counts_equal_the_plain_buffer():
     tabs = {"forward": DirectionTable(table_keys, rng.random(len(table_keys))),
             "reverse": DirectionTable(table_keys[::2].copy(), rng.random(len(table_keys[::2])))}
     task, plain = mstep.TaskCounts(tabs), counts.CountBuffer()
-    for _ in range(6):
+    as_rows, drained = mstep.TaskCounts(tabs), counts.CountBuffer()  # the same counts, taken as sorted runs
+    for step in range(6):
         dict_keys = np.unique((rng.integers(0, 45, 300).astype(np.int64) << 32) | rng.integers(0, 45, 300))
         for d, name in enumerate(("forward", "reverse")):
             emitted = rng.random(len(dict_keys)) < 0.9
             values = rng.random(len(dict_keys)) * 3
             other = (np.array([-1, -2], np.int32), np.array([d + 3, 0], np.int32), np.array([0.5, -7.0]))
             task.add(dict_keys, tabs[name].positions(dict_keys), d, emitted, values, other)
+            as_rows.add(dict_keys, tabs[name].positions(dict_keys), d, emitted, values, other)
             src, tgt = dict_keys[emitted] >> 32, dict_keys[emitted] & 0xFFFFFFFF
             all_src = np.concatenate([src, other[0]])
             all_tgt = np.concatenate([tgt, other[1]])
             hi, lo = estep.to_fixed(np.concatenate([values[emitted], other[2]]))
             mstep.fold_rows(plain, np.full(len(all_src), d, np.int8), all_src, all_tgt, hi, lo)
+        if step % 2:  # taken twice along the way: each time what was added since, and nothing after
+            for run in as_rows.rows():
+                assert np.all(np.diff(run[0]) > 0)
+                drained.add(*run)
+            assert all(len(run[0]) == 0 for run in as_rows.rows())
     got = [counts.decode_rows(data) for _, data in task.payloads(3)]
     k, a, b = (np.concatenate(x) for x in zip(*got))
     order = np.argsort(k)
@@ -180,6 +187,8 @@ def test_table_aligned_task_counts_equal_the_plain_buffer():
     np.testing.assert_array_equal(k[order], keys)
     np.testing.assert_array_equal(a[order], h)
     np.testing.assert_array_equal(b[order], lo_sum)
+    for g, w in zip(drained.result(), (keys, h, lo_sum)):
+        np.testing.assert_array_equal(g, w)
 
 
 def test_add_at_positions_equals_splitting_and_adding_with_numpy():
@@ -411,6 +420,11 @@ def test_encode_touched_equals_gathering_by_bucket_then_encoding(d):
         np.testing.assert_array_equal(lo, acc[want, 1])
         assert np.array_equal(counts.buckets_of(k, 7), np.full(len(k), b))
     assert counts.encode_touched(np.zeros(n, bool), table_keys, d, 7, acc) == {}
+    # the same rows, in one run of ascending keys
+    k, h, lo = counts.touched_rows(touched, table_keys, d, acc)
+    np.testing.assert_array_equal(k, table_keys[touched] + shift)
+    np.testing.assert_array_equal(h, acc[touched, 0])
+    np.testing.assert_array_equal(lo, acc[touched, 1])
 
 
 def test_count_buffer_folds_payloads_and_arrays_alike():
@@ -429,8 +443,16 @@ def test_count_buffer_folds_payloads_and_arrays_alike():
             else:
                 buf.add(*part)
         buf.add_payload(counts.encode_rows(keys[:0], hi[:0], lo[:0]))  # no rows: nothing to do
+        assert buf.max_keys >= len(want[0])
         for g, w in zip(buf.result(), want):
             np.testing.assert_array_equal(g, w)
+    # more sorted runs than a fold merges directly: folded as they come, the same sums
+    buf = counts.CountBuffer(compact_rows=10 ** 9)
+    for chunk in np.array_split(np.arange(len(keys)), 3 * counts.MERGE_RUNS):
+        buf.add(*counts.reduce_sorted(*(a[chunk][np.argsort(keys[chunk], kind="stable")] for a in (keys, hi, lo))))
+        assert len(buf._parts) < counts.MERGE_RUNS
+    for g, w in zip(buf.result(), want):
+        np.testing.assert_array_equal(g, w)
     with pytest.raises(ValueError):
         counts.CountBuffer().add_payload(b"\x01" * 10)
 
