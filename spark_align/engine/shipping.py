@@ -13,28 +13,38 @@ whatever the partition holds; the driver holds none of it.
 
 ``join`` (this module; distributed EM after Wolfe, Haghighi & Klein 2008):
 each E-step task receives only the entries its blocks need, through Spark's
-shuffle. The *unit keys* ``(unit, key)`` -- every distinct dictionary key of
-each unit of work (one row group of encoded blocks, ``mstep.block_units``) --
-are written once per run under ``encoded/unit_keys`` (on first use, with the
-units they number in ``encoded/unit_keys.json``, written last). Per iteration::
+shuffle, as opaque bytes (no SQL join). The table is already split into the
+reducers' buckets (one file per bucket, by conditioning word). The *routes*
+say which entries each unit of work (one row group of encoded blocks,
+``mstep.block_units``) needs from each bucket: file ``P`` of
+``encoded/routes/<buckets>/`` holds, per direction, every distinct dictionary
+key of every unit whose entry lies in bucket ``P``, sorted by (unit, key). They
+do not change between iterations, so they are written once per run (and number
+of buckets), committed by ``encoded/routes/<buckets>.json``. Per iteration::
 
-    params = unit_keys LEFT JOIN table ON key     -> (unit, key, prob per direction)
-    params.repartition(tasks, unit).sortWithinPartitions(unit).mapInArrow(E-step)
+    lookup task P: table file P + routes file P -> (unit, that unit's probabilities from bucket P)
+    shuffle to the unit's E-step task, sorted by unit     (repartitionAndSortWithinPartitions)
+    E-step task:   one unit at a time: its blocks (read from Parquet) + its records
 
-The E-step task takes one unit's rows at a time, reads that unit's blocks
-from Parquet itself (as the broadcast path does: the blocks never pass through
-the shuffle), finds each block's dictionary in the unit's entries (``MIN_PROB``
-where the table has none, as the broadcast lookup gives) and folds the counts of
-all its units into one sum per key before emitting them by reducer bucket:
-a unit's counts go into accumulators aligned with its entries (as the broadcast
-path's go into the whole table's), and leave them as sorted runs, which the
-task merges. Memory per task: one unit's entries and accumulators (about 65
-bytes per unit key) and blocks, and the task's folded counts, which it sends on
-whenever they may hold ``TASK_KEYS`` distinct keys
-(``spark.spark_align.joinTaskKeys``); nothing
-table-sized anywhere, the driver included. The price is the join's shuffles every
-iteration (the unit keys and the table by key, then the joined entries by
-unit), which the broadcast path avoids.
+A table in other buckets (the seeded random start, or one written by another
+number of reducers) first goes to the lookup tasks by bucket, through a shuffle.
+
+The E-step task reads a unit's blocks from Parquet itself (the blocks never
+pass through the shuffle), places the unit's records in its sorted keys
+(``MIN_PROB`` where the table has none, as the broadcast lookup gives), finds
+each block's dictionary there once for both directions and adds the counts
+into accumulators aligned with the unit's entries (as the broadcast path adds
+into the whole table's); they leave as one sorted run per unit, which the task
+merges into one sum per key before emitting them by reducer bucket. Memory per
+task: one unit's entries and accumulators (about 65 bytes per unit key) and
+blocks, the records waiting for its later units (Spark's sort spills them to
+disk beyond ``spark.python.worker.memory``), and the task's folded counts, which
+it sends on whenever they may hold ``TASK_KEYS`` distinct keys
+(``spark.spark_align.joinTaskKeys``). A lookup task holds one bucket of the
+table and of the routes. Nothing table-sized anywhere, the driver included.
+The price is two shuffles every iteration (8 bytes per unit key and direction
+to the E-step, then the counts), which the broadcast path avoids: it ships the
+whole table instead.
 
 The rule (``--shipping auto``): broadcast while the whole table fits the
 budget, ``entries x 48 bytes <= --table-budget-mb``, else join. The default
@@ -54,11 +64,10 @@ from spark_align.config import SHIPPINGS as SHIPPING_MODES
 from spark_align.engine.estep import _maybe_fail, note_task_memory
 from spark_align.engine.ingest import block_array
 from spark_align.engine.tables import DIRS, MIN_PROB, DirectionTable, keep_freed_memory
+from spark_align.kernels import counts
 
 BYTES_PER_ENTRY = 48  # per Python worker per entry on the whole-table path (see the module docstring)
 DEFAULT_BUDGET_MB = 768
-UNIT_KEYS = ("encoded", "unit_keys")
-UNIT_KEYS_COMMIT = "encoded/unit_keys.json"  # the units the keys number, written last
 # A join-path E-step task sends its folded counts on whenever they may hold this many distinct keys (24
 # bytes each, 48 while they are merged, plus their encoding), so that its memory does not grow with its
 # share of the corpus.
@@ -94,98 +103,217 @@ def table_entries(spark, table_path: str) -> int:
         return spark.read.parquet(table_path).count()
 
 
-UNIT_KEYS_SCHEMA = "unit int, key long"
+ROUTES = ("encoded", "routes")  # encoded/routes/<buckets>/part-PPPPP.parquet
 
 
-def unit_keys_frame(spark, store, units: list[tuple[str, int]]):
-    """(unit, key): the distinct dictionary keys of every unit of ``units`` (``mstep.block_units``),
-    written once under ``encoded/unit_keys``; returns the frame and the units it numbers (as written in
-    ``encoded/unit_keys.json``, the commit: absent means unfinished, and the keys are written again)."""
+def routes_commit(n_buckets: int) -> str:
+    """The commit of the routes for ``n_buckets`` table buckets: the units they number, written last."""
+    return f"encoded/routes/{n_buckets}.json"
+
+
+def task_of(unit: int, n_tasks: int, n_units: int) -> int:
+    """The E-step task of a unit: consecutive units to each task, as ``parallelize`` slices a list."""
+    return unit * n_tasks // n_units
+
+
+def key_buckets(keys: np.ndarray, d: int, n_buckets: int) -> np.ndarray:
+    """The table bucket (reducer) of each pair key ``src << 32 | tgt`` in direction ``d``
+    (``kernels.counts.bucket_of_cond`` of its conditioning word: src forward, tgt reverse)."""
+    cond = keys >> 32 if d == 0 else keys & np.int64(0xFFFFFFFF)
+    return counts.bucket_of_cond(cond, d, n_buckets)
+
+
+def unit_dictionary(fs, path: str, row_group: int) -> np.ndarray:
+    """The distinct dictionary keys of one unit's blocks, ascending (only ``dict_keys`` is read)."""
+    from spark_align.engine.mstep import read_unit
+
+    keys = [block_array(b.column(0), k, "dict_keys")
+            for b in read_unit(fs, path, row_group, columns=["dict_keys"]) for k in range(b.num_rows)]
+    return np.unique(np.concatenate(keys)) if keys else np.zeros(0, np.int64)
+
+
+def ensure_routes(spark, store, units: list[tuple[str, int]], n_buckets: int) -> str:
+    """The fsspec URL of the routes for ``n_buckets`` table buckets, written first if need be.
+
+    File ``part-PPPPP.parquet`` holds, per direction, every unit key whose entry that direction keeps
+    in bucket ``P``, as rows (dir, unit, key) sorted by (dir, unit, key). Written once per run and
+    number of buckets, by one Spark job (the unit keys shuffled by bucket), and committed by
+    ``routes_commit(n_buckets)`` naming the units they number (other units: written again)."""
+    from spark_align.engine.mstep import part_name
     from spark_align.store import fsspec_url
 
-    path = store.spark_path(*UNIT_KEYS)
-    if store.exists(UNIT_KEYS_COMMIT):
-        listed = store.read_json(UNIT_KEYS_COMMIT)["units"]
-        return spark.read.parquet(path), [(store.fsspec_path("encoded", "blocks", name), rg) for name, rg in listed]
+    url = fsspec_url(store.spark_path(*ROUTES, str(n_buckets)))
+    listed = [[posixpath.basename(path), rg] for path, rg in units]
+    committed = store.read_json(routes_commit(n_buckets))
+    if committed is not None and committed.get("units") == listed:
+        return url
+    store.remove(*ROUTES, str(n_buckets))
     sc = spark.sparkContext
-    rows = [(i, path_, rg) for i, (path_, rg) in enumerate(units)]
-    units_df = sc.parallelize(rows, max(1, min(len(rows), 4 * sc.defaultParallelism))).toDF(
-        "unit int, path string, row_group int")
-    units_df.mapInArrow(unit_keys(fsspec_url(store.spark_path("encoded", "blocks"))),
-                        UNIT_KEYS_SCHEMA).write.mode("overwrite").parquet(path)
-    store.write_json(UNIT_KEYS_COMMIT, {"units": [[posixpath.basename(path_), rg] for path_, rg in units]})
-    return spark.read.parquet(path), units
+    blocks_url = fsspec_url(store.spark_path("encoded", "blocks"))
 
-
-def unit_keys(blocks_url: str):
-    """``mapInArrow`` function: (unit, path, row_group) rows -> (unit, key), the unit's blocks' dictionary
-    keys, each once (only the ``dict_keys`` column is read)."""
-
-    def fn(batches):
+    def pieces(numbered):
         import fsspec
 
-        from spark_align.engine.mstep import read_unit
-
         fs, _root = fsspec.core.url_to_fs(blocks_url)
-        for batch in batches:
-            for unit, path, row_group in zip(*(batch.column(i).to_pylist() for i in range(3))):
-                keys = [block_array(b.column(0), k, "dict_keys")
-                        for b in read_unit(fs, path, row_group, columns=["dict_keys"]) for k in range(b.num_rows)]
-                keys = np.unique(np.concatenate(keys)) if keys else np.zeros(0, np.int64)
-                yield pa.RecordBatch.from_arrays([pa.array(np.full(len(keys), unit, np.int32)), pa.array(keys)],
-                                                 names=["unit", "key"])
+        for unit, (path, row_group) in numbered:
+            yield from unit_routes(unit, unit_dictionary(fs, path, row_group), n_buckets)
 
-    return fn
+    def write(p, records):
+        import fsspec
+        import pyarrow.parquet as pq
 
+        fs, root = fsspec.core.url_to_fs(url)
+        target = posixpath.join(root, part_name(p))
+        tmp = f"{target}.tmp-{time.time_ns()}"
+        fs.makedirs(root, exist_ok=True)
+        with fs.open(tmp, "wb") as fh:
+            pq.write_table(routes_table(piece for _p, piece in records), fh, **ROUTES_WRITE)
+        fs.mv(tmp, target)
+        yield p
 
-def params_frame(unit_keys_df, table_df, directions: tuple[str, ...]):
-    """(unit, key, <one probability column per direction>): every unit key with the table's entry for it
-    in each direction (null where the table has none; a left join, so that every unit has rows). The
-    table is first turned into one row per key (a full outer join of its directions): half the rows the
-    join would otherwise give and send to the E-step. At 100k pairs and 30.6M entries the whole join
-    took 23-24 s against 28-34 s with the same rows made by a grouped aggregation, whose partial
-    aggregation before the shuffle merges almost nothing."""
-    from pyspark.sql import functions as F
-
-    key = F.shiftleft(F.col("src").cast("long"), 32).bitwiseOR(F.col("tgt").cast("long"))
-    parts = [table_df.filter(F.col("dir") == DIRS.index(d)).select(key.alias("key"), F.col("prob").alias(d))
-             for d in directions]
-    by_key = parts[0]
-    for part in parts[1:]:
-        by_key = by_key.join(part, "key", "full")
-    return unit_keys_df.join(by_key, "key", "left").select("unit", "key", *directions)
+    numbered = list(enumerate(units))
+    written = (sc.parallelize(numbered, max(1, min(len(numbered), 4 * sc.defaultParallelism)))
+               .mapPartitions(pieces).partitionBy(n_buckets, lambda p: p).mapPartitionsWithIndex(write).collect())
+    if sorted(written) != list(range(n_buckets)):
+        raise RuntimeError(f"routes: {n_buckets - len(set(written))} of {n_buckets} bucket files were not written")
+    store.write_json(routes_commit(n_buckets), {"units": listed, "buckets": n_buckets})
+    return url
 
 
-def unit_tables(params: pa.Table, directions: tuple[str, ...]) -> dict[str, DirectionTable]:
-    """One unit's joined entries as a sorted :class:`~spark_align.engine.tables.DirectionTable` per
-    direction, which finds a block's dictionary in them as the broadcast path finds it in the whole
-    table (``MIN_PROB`` where the table has no entry)."""
-    import pyarrow.compute as pc
+# Routes files: keys delta-coded (ascending within each unit); directions and units dictionary-coded
+# (their long runs become run lengths).
+ROUTES_WRITE = {"compression": "lz4_raw", "use_dictionary": ["dir", "unit"],
+                "column_encoding": {"key": "DELTA_BINARY_PACKED"}}
 
-    keys = params.column("key").to_numpy()
-    order = np.argsort(keys, kind="stable")
-    sorted_keys = np.ascontiguousarray(keys[order])
-    return {d: DirectionTable(sorted_keys, pc.fill_null(params.column(d), MIN_PROB).to_numpy()[order])
-            for d in directions}
+
+def unit_routes(unit: int, keys: np.ndarray, n_buckets: int):
+    """(bucket, (direction index, unit, keys as bytes)) pieces of the routes: for each direction, the
+    unit's ascending ``keys`` whose entry that direction keeps in each bucket."""
+    for d in range(len(DIRS)):
+        bucket = key_buckets(keys, d, n_buckets)
+        order = np.argsort(bucket, kind="stable")  # keys ascending within each bucket
+        bounds = np.concatenate([[0], np.cumsum(np.bincount(bucket, minlength=n_buckets))])
+        for p in np.flatnonzero(np.diff(bounds)):
+            yield int(p), (d, unit, keys[order[bounds[p]:bounds[p + 1]]].tobytes())
+
+
+def routes_table(pieces) -> pa.Table:
+    """One bucket's routes file, (dir, unit, key) sorted by (dir, unit, key), from its pieces."""
+    parts = sorted(pieces)
+    keys = [np.frombuffer(data, np.int64) for _d, _u, data in parts]
+    lengths = [len(k) for k in keys]
+    return pa.table({
+        "dir": pa.array(np.repeat([d for d, _u, _k in parts], lengths).astype(np.int8)),
+        "unit": pa.array(np.repeat([u for _d, u, _k in parts], lengths).astype(np.int32)),
+        "key": pa.array(np.concatenate(keys) if keys else np.zeros(0, np.int64))})
+
+
+def bucket_entries(part) -> dict[int, tuple[np.ndarray, np.ndarray]]:
+    """Direction index -> (keys ascending, probabilities) of table rows (dir, src, tgt, prob) as Arrow."""
+    from spark_align.kernels import ragged
+
+    dirs, src, tgt, prob = (np.asarray(part.column(name).to_numpy()) for name in ("dir", "src", "tgt", "prob"))
+    out = {}
+    for d in range(len(DIRS)):
+        sel = dirs == d
+        keys, probs = ragged.make_key(src[sel], tgt[sel]), prob[sel]
+        if len(keys) > 1 and not np.all(keys[1:] > keys[:-1]):
+            order = np.argsort(keys, kind="stable")
+            keys, probs = keys[order], probs[order]
+        out[d] = (keys, probs)
+    return out
+
+
+_RECORD_HEAD = 1 + len(DIRS)  # int64s before a record's probabilities: its bucket, then a count per direction
+
+
+def make_route_lookup(routes_url: str, directions: tuple[str, ...]):
+    """The lookup of bucket ``p``: (p, its table entries) -> (unit, record) for every unit with keys
+    there. A record is int64 [p, n per direction] then float64 probabilities: per direction, the
+    table's entry for each of the unit's keys of bucket ``p`` (ascending), ``MIN_PROB`` where it has
+    none."""
+
+    def looked_up(p: int, entries: dict[int, tuple[np.ndarray, np.ndarray]]):
+        import fsspec
+        import pyarrow.parquet as pq
+
+        from spark_align.engine.mstep import part_name
+        from spark_align.kernels import lookup
+
+        fs, root = fsspec.core.url_to_fs(routes_url)
+        with fs.open(posixpath.join(root, part_name(p)), "rb") as fh:
+            routes = pq.read_table(fh)
+        dirs, unit, keys = (routes.column(name).to_numpy() for name in ("dir", "unit", "key"))
+        per_dir = {}
+        for d in (DIRS.index(x) for x in directions):
+            lo, hi = np.searchsorted(dirs, [d, d + 1])
+            table_keys, table_probs = entries.get(d, (np.zeros(0, np.int64), np.zeros(0)))
+            # keys ascend within each unit: the search gallops forward and restarts at each unit
+            probs = lookup.find(table_keys, table_probs, keys[lo:hi], MIN_PROB)[2]
+            units_d = unit[lo:hi]
+            cuts = np.flatnonzero(np.diff(units_d)) + 1
+            per_dir[d] = dict(zip(units_d[np.concatenate([[0], cuts])].tolist(), np.split(probs, cuts))
+                              if len(units_d) else [])
+        for u in sorted(set().union(*(x.keys() for x in per_dir.values()))):
+            parts = [per_dir.get(d, {}).get(u, np.zeros(0)) for d in range(len(DIRS))]
+            head = np.array([p, *(len(x) for x in parts)], np.int64)
+            yield u, head.tobytes() + b"".join(x.tobytes() for x in parts)
+
+    return looked_up
+
+
+def unit_entries(keys: np.ndarray, records: list[bytes], directions: tuple[str, ...], n_buckets: int,
+                 unit: int) -> dict[str, DirectionTable]:
+    """A unit's entries from its routed records (:func:`make_route_lookup`): one
+    :class:`~spark_align.engine.tables.DirectionTable` per direction over the unit's sorted ``keys``.
+    RuntimeError if a bucket's entries are missing, repeated or of the wrong length."""
+    got: dict[int, np.ndarray] = {}
+    for data in records:
+        head = np.frombuffer(data, np.int64, _RECORD_HEAD)
+        if int(head[0]) in got:
+            raise RuntimeError(f"unit {unit}: the entries of table bucket {int(head[0])} arrived twice")
+        got[int(head[0])] = head
+    out = {}
+    for direction in directions:
+        d = DIRS.index(direction)
+        bucket = key_buckets(keys, d, n_buckets)
+        order = np.argsort(bucket, kind="stable")
+        bounds = np.concatenate([[0], np.cumsum(np.bincount(bucket, minlength=n_buckets))])
+        probs = np.empty(len(keys), np.float64)
+        for data in records:
+            head = np.frombuffer(data, np.int64, _RECORD_HEAD)
+            p = int(head[0])
+            start = 8 * (_RECORD_HEAD + int(head[1:1 + d].sum()))
+            segment = np.frombuffer(data, np.float64, int(head[1 + d]), start)
+            if len(segment) != bounds[p + 1] - bounds[p]:
+                raise RuntimeError(f"unit {unit}: {len(segment)} {direction} entries of table bucket {p} "
+                                   f"for {bounds[p + 1] - bounds[p]} keys")
+            probs[order[bounds[p]:bounds[p + 1]]] = segment
+        missing = [int(p) for p in np.flatnonzero(np.diff(bounds)) if p not in got]
+        if missing:
+            raise RuntimeError(f"unit {unit}: no {direction} entries arrived from table buckets {missing[:5]}")
+        out[direction] = DirectionTable(keys, probs)
+    return out
 
 
 def make_join_estep(model, directions: tuple[str, ...], dense: dict[str, dict], *, blocks_url: str,
-                    units: list[tuple[str, int]], n_buckets: int, flush_keys: int = TASK_KEYS):
-    """The ``mapInArrow`` E-step of the join path: a task's params rows, sorted by unit -> (bucket,
+                    units: list[tuple[str, int]], n_tasks: int, n_buckets: int, flush_keys: int = TASK_KEYS):
+    """The E-step of the join path: (task index, its (unit, record) pairs sorted by unit) -> (bucket,
     payload) records of its units' counts, folded (``engine.mstep``) and sent on whenever they may hold
     ``flush_keys`` distinct keys and at the end, and the timing scalars of ``engine.estep``'s module
     docstring (3, 4, 5, 7 and 8).
 
-    A unit's counts are added into accumulators aligned with its entries (found once per block for
-    both directions, as the broadcast path adds into the whole table's) and leave them as sorted runs,
+    Every unit of the task (:func:`task_of`) is run, in order, with the records that arrived for it. A
+    unit's counts are added into accumulators aligned with its entries (found once per block for both
+    directions, as the broadcast path adds into the whole table's) and leave them as sorted runs,
     which the task's :class:`~spark_align.kernels.counts.CountBuffer` merges."""
 
-    def estep(batches):
+    def estep(task_index, routed):
         import fsspec
 
         from spark_align.engine import mstep
         from spark_align.engine.estep import block_results, read_blocks, timing_payloads
-        from spark_align.kernels import counts, lookup
+        from spark_align.kernels import lookup
 
         _maybe_fail()
         keep_freed_memory()
@@ -193,11 +321,6 @@ def make_join_estep(model, directions: tuple[str, ...], dense: dict[str, dict], 
         fs, _root = fsspec.core.url_to_fs(blocks_url)
         folded = counts.CountBuffer()  # the counts not sent yet
         seconds = {"lookup": 0.0, "add": 0.0, "read": 0.0, "payload": 0.0}
-
-        def send(records):
-            for bucket, data in records:
-                yield pa.RecordBatch.from_arrays([pa.array([bucket], pa.int32()), pa.array([data], pa.binary())],
-                                                 names=["bucket", "payload"])
 
         def fold(task: mstep.TaskCounts) -> None:
             added = time.perf_counter()
@@ -213,14 +336,15 @@ def make_join_estep(model, directions: tuple[str, ...], dense: dict[str, dict], 
             seconds["payload"] += time.perf_counter() - payload_started
             return records
 
-        def run_unit(unit: int, pieces: list[pa.RecordBatch]):
-            looked_up = time.perf_counter()
-            entries = unit_tables(pa.Table.from_batches(pieces), directions)
-            keys = entries[directions[0]].keys  # the same sorted keys in every direction
-            seconds["lookup"] += time.perf_counter() - looked_up
+        def run_unit(unit: int, records: list[bytes]):
             read_started = time.perf_counter()
             blocks = read_blocks(fs, *units[unit], with_keys=True)
             seconds["read"] += time.perf_counter() - read_started
+            looked_up = time.perf_counter()
+            keys = (np.unique(np.concatenate([block.dict_keys for block in blocks])) if blocks
+                    else np.zeros(0, np.int64))
+            entries = unit_entries(keys, records, directions, n_buckets, unit)
+            seconds["lookup"] += time.perf_counter() - looked_up
             task, pending = mstep.TaskCounts(entries), 0
             for block in blocks:
                 looked_up = time.perf_counter()
@@ -235,45 +359,77 @@ def make_join_estep(model, directions: tuple[str, ...], dense: dict[str, dict], 
                 if folded.max_keys + pending >= flush_keys:
                     fold(task)
                     pending = 0
-                    yield from send(flush())
+                    yield from flush()
             fold(task)
 
-        current, pieces = None, []
-        for batch in batches:
-            if batch.num_rows == 0:
-                continue
-            unit_col = batch.column(0).to_numpy()
-            cuts = [0, *(np.flatnonzero(unit_col[1:] != unit_col[:-1]) + 1).tolist(), len(unit_col)]
-            for lo, hi in zip(cuts[:-1], cuts[1:]):
-                unit = int(unit_col[lo])
-                if current is not None and unit != current:
-                    yield from run_unit(current, pieces)
-                    pieces = []
-                current = unit
-                pieces.append(batch.slice(lo, hi - lo))
-        if current is not None:
-            yield from run_unit(current, pieces)
+        mine = [u for u in range(len(units)) if task_of(u, n_tasks, len(units)) == task_index]
+        routed = iter(routed)
+        ahead = next(routed, None)
+        for unit in mine:
+            records = []
+            while ahead is not None and ahead[0] == unit:
+                records.append(ahead[1])
+                ahead = next(routed, None)
+            yield from run_unit(unit, records)
+        if ahead is not None:
+            raise RuntimeError(f"E-step task {task_index}: entries arrived for unit {ahead[0]}, not one of its own")
         records = flush()
         note_task_memory("join")
         values = [time.perf_counter() - started, seconds["lookup"], seconds["add"], 0.0, seconds["read"],
                   seconds["payload"]]
-        yield from send([*records, *timing_payloads(directions, values, n_buckets)])
+        yield from records
+        yield from timing_payloads(directions, values, n_buckets)
 
     return estep
-
-
-PAYLOAD_DDL = "bucket int, payload binary"
 
 
 def join_payloads(spark, store, units: list[tuple[str, int]], table_path: str, model, directions: tuple[str, ...],
                   dense: dict[str, dict], *, n_tasks: int, n_buckets: int, flush_keys: int = TASK_KEYS):
     """The (bucket, payload) records of one iteration with per-unit parameter shipping, as an RDD (what
-    ``engine.mstep.reduce_and_write`` takes)."""
+    ``engine.mstep.reduce_and_write`` takes): the lookup tasks (one per table bucket) route each unit's
+    entries to its E-step task (:func:`task_of`), sorted by unit.
+
+    A table the reducers wrote in ``n_buckets`` buckets is read file by file, one per lookup task;
+    any other (the seeded random initial table, or one written with another number of reducers) is
+    first sent to the lookup tasks by bucket, through a shuffle."""
+    from spark_align.engine.tables import TableLayout
     from spark_align.store import fsspec_url
 
-    keys_df, numbered = unit_keys_frame(spark, store, units)
-    params = params_frame(keys_df, spark.read.parquet(table_path), directions)
-    fn = make_join_estep(model, directions, dense, blocks_url=fsspec_url(store.spark_path("encoded", "blocks")),
-                         units=numbered, n_buckets=n_buckets, flush_keys=flush_keys)
-    return (params.repartition(n_tasks, "unit").sortWithinPartitions("unit")
-            .mapInArrow(fn, PAYLOAD_DDL).rdd.map(lambda row: (row[0], row[1])))
+    sc = spark.sparkContext
+    routes_url = ensure_routes(spark, store, units, n_buckets)
+    table_url = fsspec_url(table_path)
+    layout = TableLayout.read(table_url)
+    lookup_bucket = make_route_lookup(routes_url, directions)
+
+    def read_part(name: str):
+        import fsspec
+        import pyarrow.parquet as pq
+
+        fs, root = fsspec.core.url_to_fs(table_url)
+        with fs.open(posixpath.join(root, name), "rb") as fh:
+            return pq.read_table(fh, columns=["dir", "src", "tgt", "prob"])
+
+    if layout.bucketed and len(layout.names) == n_buckets:
+        names = layout.names
+        looked = sc.parallelize(range(n_buckets), n_buckets).flatMap(
+            lambda p: lookup_bucket(p, bucket_entries(read_part(names[p]))))
+    else:
+        def by_bucket(name: str):
+            part = read_part(name)
+            dirs, src, tgt = (np.asarray(part.column(c).to_numpy()) for c in ("dir", "src", "tgt"))
+            bucket = counts.bucket_of_cond(np.where(dirs == 0, src, tgt), dirs, n_buckets)
+            for p in np.unique(bucket):
+                yield int(p), part.filter(pa.array(bucket == p))
+
+        def merged(p, pieces):
+            pieces = [piece for _p, piece in pieces]
+            if pieces:
+                yield from lookup_bucket(p, bucket_entries(pa.concat_tables(pieces)))
+
+        looked = (sc.parallelize(layout.names, max(1, min(len(layout.names), 4 * sc.defaultParallelism)))
+                  .flatMap(by_bucket).partitionBy(n_buckets, lambda p: p).mapPartitionsWithIndex(merged))
+    estep = make_join_estep(model, directions, dense, blocks_url=fsspec_url(store.spark_path("encoded", "blocks")),
+                            units=units, n_tasks=n_tasks, n_buckets=n_buckets, flush_keys=flush_keys)
+    n_units = len(units)
+    return (looked.repartitionAndSortWithinPartitions(n_tasks, lambda u: task_of(u, n_tasks, n_units))
+            .mapPartitionsWithIndex(estep))

@@ -33,29 +33,62 @@ def test_auto_rule_switches_at_the_documented_threshold():
         shipping.choose_shipping("scatter", 1, budget_mb)
 
 
-def test_a_units_joined_entries_give_what_the_broadcast_lookup_gives():
-    """A unit's rows of the join (every unit key once, in any order, with the table's probability per
-    direction or null where the table has none) find a block's dictionary as the whole table does: the
-    same probabilities, bit for bit, and the floor where the table has no entry."""
-    import pyarrow as pa
+def _routed(tmp_path, unit_keys: dict[int, np.ndarray], entries: dict[int, tuple], n_buckets: int,
+            directions=("forward", "reverse")) -> dict[int, list[bytes]]:
+    """The routes of ``unit_keys`` written as the routes job writes them, then every bucket's lookup
+    over its table ``entries`` (direction index -> (keys, probs)), in-process: unit -> its records."""
+    from spark_align.engine.mstep import part_name
 
+    pieces: dict[int, list] = {}
+    for unit, keys in unit_keys.items():
+        for p, piece in shipping.unit_routes(unit, keys, n_buckets):
+            pieces.setdefault(p, []).append(piece)
+    root = tmp_path / "routes"
+    root.mkdir(parents=True, exist_ok=True)
+    for p in range(n_buckets):
+        pq.write_table(shipping.routes_table(pieces.get(p, [])), root / part_name(p), **shipping.ROUTES_WRITE)
+    lookup = shipping.make_route_lookup(str(root), directions)
+    routed: dict[int, list[bytes]] = {}
+    for p in range(n_buckets):
+        mine = {}
+        for d, (keys, probs) in entries.items():
+            sel = shipping.key_buckets(keys, d, n_buckets) == p
+            mine[d] = (keys[sel], probs[sel])
+        for unit, record in lookup(p, mine):
+            routed.setdefault(unit, []).append(record)
+    return routed
+
+
+def test_routed_entries_give_what_the_broadcast_lookup_gives(tmp_path):
+    """A unit's entries, routed to it from the table's buckets (whatever order the buckets' records
+    arrive in), find a block's dictionary as the whole table does: the same probabilities, bit for bit,
+    and the floor where the table has no entry. Missing, repeated or cut records are refused."""
     rng = np.random.default_rng(3)
-    unit_keys = rng.permutation(np.unique(rng.integers(0, 2 ** 40, 300)))
-    whole, columns = {}, {}
+    unit_keys = {u: np.unique(rng.integers(0, 2 ** 40, 300 + 50 * u)) for u in range(3)}
+    whole, entries = {}, {}
     for d, direction in enumerate(("forward", "reverse")):
-        table_keys = np.sort(np.concatenate([rng.choice(unit_keys, 150 + 20 * d, replace=False),
-                                             rng.integers(2 ** 41, 2 ** 42, 50)]))  # keys of other units
+        mixed = np.concatenate([rng.choice(k, 150 + 20 * d, replace=False) for k in unit_keys.values()])
+        table_keys = np.unique(np.concatenate([mixed, rng.integers(2 ** 41, 2 ** 42, 50)]))  # + keys of no unit
         table_probs = rng.uniform(0, 1, len(table_keys))
         whole[direction] = tables.DirectionTable(table_keys, table_probs)
-        prob_of = dict(zip(table_keys.tolist(), table_probs.tolist()))
-        columns[direction] = pa.array([prob_of.get(k) for k in unit_keys.tolist()], pa.float64())
-    params = pa.table({"unit": pa.array([7] * len(unit_keys), pa.int32()), "key": pa.array(unit_keys), **columns})
-    got = shipping.unit_tables(params, ("forward", "reverse"))
-    block_keys = np.sort(rng.choice(unit_keys, 200, replace=False))
-    for direction in ("forward", "reverse"):
-        want = whole[direction].local(block_keys)
-        assert np.array_equal(got[direction].local(block_keys), want)
-        assert 0 < np.sum(want == tables.MIN_PROB) < len(block_keys)
+        entries[d] = (table_keys, table_probs)
+    routed = _routed(tmp_path, unit_keys, entries, n_buckets=5)
+    assert sorted(routed) == [0, 1, 2]
+    for unit, keys in unit_keys.items():
+        records = routed[unit][::-1] if unit % 2 else routed[unit]
+        got = shipping.unit_entries(keys, records, ("forward", "reverse"), 5, unit)
+        block_keys = np.sort(rng.choice(keys, 200, replace=False))
+        for direction in ("forward", "reverse"):
+            want = whole[direction].local(block_keys)
+            assert np.array_equal(got[direction].local(block_keys), want)
+            assert 0 < np.sum(want == tables.MIN_PROB) < len(block_keys)
+    records = routed[1]
+    with pytest.raises(RuntimeError, match="no forward entries arrived from table buckets"):
+        shipping.unit_entries(unit_keys[1], records[1:], ("forward",), 5, 1)
+    with pytest.raises(RuntimeError, match="arrived twice"):
+        shipping.unit_entries(unit_keys[1], [records[0], *records], ("forward",), 5, 1)
+    with pytest.raises(RuntimeError, match="entries of table bucket"):
+        shipping.unit_entries(unit_keys[1][1:], records, ("forward",), 5, 1)
 
 
 def test_workers_read_the_reducers_files_with_their_buckets(tmp_path):
@@ -173,11 +206,11 @@ def _retrain(spark, base_run: str, new_run: str, cfg: RunConfig) -> dict[str, ob
     return _tables_by_iteration(new_run)
 
 
-def _join_task_payloads(run_dir: str, table, flush_keys: int):
-    """One join-path E-step task over every unit of ``run_dir`` with ``table``, in-process: (its payload
-    records, the lexical sums they add up to as (keys, hi, lo))."""
-    import pyarrow as pa
-    import pyarrow.compute as pc
+def _join_task_payloads(tmp_path, run_dir: str, table, flush_keys: int):
+    """One join-path E-step task over every unit of ``run_dir`` with ``table``, in-process (routes and
+    lookups as ``_routed`` does them): (its payload records, the lexical sums they add up to as (keys,
+    hi, lo))."""
+    import fsspec
 
     from spark_align.engine import mstep
     from spark_align.kernels import counts
@@ -186,21 +219,14 @@ def _join_task_payloads(run_dir: str, table, flush_keys: int):
     store = RunStore(run_dir)
     units = mstep.block_units(store)
     blocks_url = store.spark_path("encoded", "blocks")
-    batch = pa.RecordBatch.from_arrays(
-        [pa.array(range(len(units)), pa.int32()), pa.array([u[0] for u in units]),
-         pa.array([u[1] for u in units], pa.int32())], names=["unit", "path", "row_group"])
-    params = pa.Table.from_batches(list(shipping.unit_keys(blocks_url)(iter([batch]))))
-    src, tgt = (table.column(name).cast(pa.int64()) for name in ("src", "tgt"))
-    key = pc.bit_wise_or(pc.shift_left(src, 32), tgt)
-    for d, direction in enumerate(("forward", "reverse")):
-        mine = pc.equal(table.column("dir"), d)
-        params = params.join(pa.table({"key": key.filter(mine), direction: table.column("prob").filter(mine)}),
-                             "key", join_type="left outer")
-    params = params.sort_by("unit")
+    fs, _root = fsspec.core.url_to_fs(blocks_url)
+    unit_keys = {u: shipping.unit_dictionary(fs, path, rg) for u, (path, rg) in enumerate(units)}
+    routed = _routed(tmp_path, unit_keys, shipping.bucket_entries(table), n_buckets=3)
     model, directions = IBM1(), ("forward", "reverse")
     estep = shipping.make_join_estep(model, directions, {d: model.init_dense(None) for d in directions},
-                                     blocks_url=blocks_url, units=units, n_buckets=3, flush_keys=flush_keys)
-    records = [b.column(1)[0].as_py() for b in estep(iter(params.to_batches(max_chunksize=500)))]
+                                     blocks_url=blocks_url, units=units, n_tasks=1, n_buckets=3,
+                                     flush_keys=flush_keys)
+    records = [data for _bucket, data in estep(0, [(u, r) for u in sorted(routed) for r in routed[u]])]
     buffer = counts.CountBuffer()
     for data in records:
         buffer.add_payload(data)
@@ -251,12 +277,13 @@ def test_join_and_broadcast_shipping_give_bit_identical_tables_and_pruning(spark
     for d in ("forward", "reverse"):
         assert (manifest(joined, "01-hmm", 1)["metrics"][d]["loglik"]
                 == manifest(base_broadcast, "01-hmm", 1)["metrics"][d]["loglik"])
-    assert os.path.exists(os.path.join(joined, "encoded", "unit_keys.json"))
+    assert os.path.exists(os.path.join(joined, *shipping.routes_commit(4).split("/")))  # 4 reducers
 
     # A join task whose counts reach joinTaskKeys distinct keys sends them on and starts again: more
     # payloads, the same sums (in-process, over the units' joined entries); and through Spark, with the
     # setting at a few hundred keys, the same tables bit for bit.
-    sent = {limit: _join_task_payloads(base, want["00-ibm1/1"], limit) for limit in (300, 10 ** 9)}
+    sent = {limit: _join_task_payloads(tmp_path / f"task-{limit}", base, want["00-ibm1/1"], limit)
+            for limit in (300, 10 ** 9)}
     assert len(sent[300][0]) > len(sent[10 ** 9][0]) + 10
     for a, b in zip(sent[300][1], sent[10 ** 9][1]):
         assert np.array_equal(a, b)

@@ -223,6 +223,12 @@ def test_random_init_is_seeded(spark, tmp_path):
         runs.append(read_table(run_dir, "00-ibm1", 0))
     assert runs[0].equals(runs[1])
     assert not runs[0].equals(runs[2])
+    # The random table is Spark's, not in the reducers' buckets: the join path sends it to its lookups
+    # by bucket first, and the iteration from it is the broadcast path's, bit for bit.
+    joined = str(tmp_path / "a-join")
+    train(spark, config(corpus, "ibm1:1", init="random", seed=3, shipping="join"), joined, log=lambda _: None)
+    assert read_table(joined, "00-ibm1", 1).equals(read_table(str(tmp_path / "a"), "00-ibm1", 1))
+    assert manifest(joined, "00-ibm1", 1)["metrics"]["forward"]["shipping"] == "join"
     probs = runs[0].to_pydict()
     totals = {}
     for d, s_id, t_id, p in zip(probs["dir"], probs["src"], probs["tgt"], probs["prob"]):
