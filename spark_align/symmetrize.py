@@ -62,6 +62,7 @@ import numpy as np
 from numba import njit
 
 from spark_align.errors import InputError
+from spark_align.kernels import ragged
 
 METHODS = ("intersection", "union", "grow-diag", "grow-diag-final", "grow-diag-final-and")
 
@@ -297,15 +298,6 @@ def _cell_keys(links: tuple, n_pairs: int, n_src_max: int, n_tgt_max: int) -> np
     return (pair * n_src_max + np.asarray(links[1], dtype=np.int64)) * n_tgt_max + np.asarray(links[2], dtype=np.int64)
 
 
-def _unique(keys: np.ndarray) -> np.ndarray:
-    """``np.unique(keys)``; keys that arrive sorted (each pair's links in order, as the output pass
-    gives them) are only de-duplicated: np.unique hashes and sorts them again (a tenth of decoding a
-    block's pairs)."""
-    if len(keys) < 2 or not bool(np.all(keys[1:] >= keys[:-1])):
-        return np.unique(keys)
-    return keys[np.concatenate([[True], keys[1:] != keys[:-1]])]
-
-
 def _key_space(n_pairs: int, n_src: np.ndarray, n_tgt: np.ndarray) -> tuple[int, int]:
     n_src_max = max(int(n_src.max(initial=0)), 1)
     n_tgt_max = max(int(n_tgt.max(initial=0)), 1)
@@ -354,11 +346,11 @@ def symmetrize_batch(forward: LinkArrays, reverse: LinkArrays, *, n_src: np.ndar
     _check_csr("forward alignment", tuple(forward), n_pairs, n_src, n_tgt)
     _check_csr("reverse alignment", tuple(reverse), n_pairs, n_src, n_tgt)
     n_src_max, n_tgt_max = _key_space(n_pairs, n_src, n_tgt)
-    fwd_keys = _unique(_cell_keys(forward, n_pairs, n_src_max, n_tgt_max))
-    rev_keys = _unique(_cell_keys(reverse, n_pairs, n_src_max, n_tgt_max))
+    fwd_keys = ragged.distinct(_cell_keys(forward, n_pairs, n_src_max, n_tgt_max))
+    rev_keys = ragged.distinct(_cell_keys(reverse, n_pairs, n_src_max, n_tgt_max))
     if method == "intersection":
         return _keys_to_links(np.intersect1d(fwd_keys, rev_keys, assume_unique=True), n_pairs, n_src_max, n_tgt_max)
-    union_keys = _unique(np.sort(np.concatenate([fwd_keys, rev_keys]), kind="stable"))  # two sorted runs
+    union_keys = ragged.distinct(np.concatenate([fwd_keys, rev_keys]))  # two sorted runs
     if method == "union":
         return _keys_to_links(union_keys, n_pairs, n_src_max, n_tgt_max)
 

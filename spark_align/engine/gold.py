@@ -159,8 +159,8 @@ class GoldMonitor:
 
         self.spark, self.cfg, self.gold = spark, cfg, gold
         self.blocks, self.key_of_row, self.n_missing = blocks, key_of_row, n_missing
-        keys = (np.unique(np.concatenate([block.dict_keys for batch in blocks.to_batches()
-                                          for _id, _rows, block in blocks_from_batch(batch)]))
+        keys = (ragged.distinct(np.concatenate([block.dict_keys for batch in blocks.to_batches()
+                                                for _id, _rows, block in blocks_from_batch(batch)]))
                 if blocks.num_rows else np.zeros(0, np.int64))
         src, tgt = ragged.split_key(keys)
         self._keys_frame = spark.createDataFrame(

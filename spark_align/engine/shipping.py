@@ -64,7 +64,7 @@ from spark_align.config import SHIPPINGS as SHIPPING_MODES
 from spark_align.engine.estep import _maybe_fail, note_task_memory
 from spark_align.engine.ingest import block_array
 from spark_align.engine.tables import DIRS, MIN_PROB, DirectionTable, keep_freed_memory
-from spark_align.kernels import counts
+from spark_align.kernels import counts, ragged
 
 BYTES_PER_ENTRY = 48  # per Python worker per entry on the whole-table path (see the module docstring)
 DEFAULT_BUDGET_MB = 768
@@ -120,7 +120,9 @@ def key_buckets(keys: np.ndarray, d: int, n_buckets: int) -> np.ndarray:
     """The table bucket (reducer) of each pair key ``src << 32 | tgt`` in direction ``d``
     (``kernels.counts.bucket_of_cond`` of its conditioning word: src forward, tgt reverse)."""
     cond = keys >> 32 if d == 0 else keys & np.int64(0xFFFFFFFF)
-    return counts.bucket_of_cond(cond, d, n_buckets)
+    bucket = counts.bucket_of_cond(cond, d, n_buckets)
+    # 16 bits, where they hold the buckets, make a stable argsort a counting sort: 4x faster
+    return bucket.astype(np.int16) if n_buckets <= 2 ** 15 else bucket
 
 
 def unit_dictionary(fs, path: str, row_group: int) -> np.ndarray:
@@ -129,7 +131,7 @@ def unit_dictionary(fs, path: str, row_group: int) -> np.ndarray:
 
     keys = [block_array(b.column(0), k, "dict_keys")
             for b in read_unit(fs, path, row_group, columns=["dict_keys"]) for k in range(b.num_rows)]
-    return np.unique(np.concatenate(keys)) if keys else np.zeros(0, np.int64)
+    return ragged.distinct(np.concatenate(keys)) if keys else np.zeros(0, np.int64)
 
 
 def ensure_routes(spark, store, units: list[tuple[str, int]], n_buckets: int) -> str:
@@ -210,8 +212,6 @@ def routes_table(pieces) -> pa.Table:
 
 def bucket_entries(part) -> dict[int, tuple[np.ndarray, np.ndarray]]:
     """Direction index -> (keys ascending, probabilities) of table rows (dir, src, tgt, prob) as Arrow."""
-    from spark_align.kernels import ragged
-
     dirs, src, tgt, prob = (np.asarray(part.column(name).to_numpy()) for name in ("dir", "src", "tgt", "prob"))
     out = {}
     for d in range(len(DIRS)):
@@ -341,7 +341,7 @@ def make_join_estep(model, directions: tuple[str, ...], dense: dict[str, dict], 
             blocks = read_blocks(fs, *units[unit], with_keys=True)
             seconds["read"] += time.perf_counter() - read_started
             looked_up = time.perf_counter()
-            keys = (np.unique(np.concatenate([block.dict_keys for block in blocks])) if blocks
+            keys = (ragged.distinct(np.concatenate([block.dict_keys for block in blocks])) if blocks
                     else np.zeros(0, np.int64))
             entries = unit_entries(keys, records, directions, n_buckets, unit)
             seconds["lookup"] += time.perf_counter() - looked_up

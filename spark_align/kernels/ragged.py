@@ -71,6 +71,15 @@ def make_key(src_ids: np.ndarray, tgt_ids: np.ndarray) -> np.ndarray:
     return (src_ids.astype(np.int64) << 32) | tgt_ids.astype(np.int64)
 
 
+def distinct(keys: np.ndarray) -> np.ndarray:
+    """The distinct values of int64 ``keys``, ascending: ``np.unique(keys)`` without its hashing, which
+    for 64-bit keys of wide range took 0.43 s for 1M keys and 8 s for 7.6M (numpy 2.4) against 0.01 s
+    and 0.1 s for a stable sort (fastest over a few sorted runs, as block dictionaries are) and a pass
+    dropping repeats."""
+    keys = np.sort(np.asarray(keys), kind="stable")
+    return keys[np.concatenate([[True], keys[1:] != keys[:-1]])] if len(keys) else keys
+
+
 def split_key(keys: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Inverse of :func:`make_key`: (src_ids, tgt_ids), both int32."""
     return (keys >> 32).astype(np.int32), (keys & 0xFFFFFFFF).astype(np.int32)
