@@ -58,7 +58,8 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
                    help="how --directions both combines the two alignments (default grow-diag-final-and)")
     g.add_argument("--shipping", choices=SHIPPINGS, default="auto",
                    help="how each E-step task gets the translation table: broadcast (the whole table to every "
-                        "task), join (each task gets only the word pairs of its blocks, through a Spark join), or "
+                        "task), join (each task gets only the word pairs of its blocks, routed to it through Spark's "
+                        "shuffle), or "
                         "auto (default): broadcast while the table takes at most --table-budget-mb, else join. "
                         "Results are identical")
     g.add_argument("--table-budget-mb", type=float, default=768.0, metavar="MB",

@@ -37,7 +37,7 @@ from spark_align import evaluate as ev
 from spark_align.config import CorpusConfig, RunConfig
 from spark_align.engine.ingest import (BLOCK_SCHEMA, MONO_PARTITION_SHIFT, ROW, block_batch, block_id_of,
                                        blocks_from_batch)
-from spark_align.engine.tables import DirectionTable, tables_from_arrow
+from spark_align.engine.tables import DirectionTable, Held, tables_from_arrow
 from spark_align.errors import ConfigError, InputError
 from spark_align.kernels import ragged
 from spark_align.store import RunStore
@@ -86,13 +86,6 @@ def load_gold(path: str, corpus: CorpusConfig, *, id_column: str | None = None) 
     if corpus.id_column is None:
         raise ConfigError("--gold with a Parquet gold file needs --id-column: the corpus column its keys refer to")
     return GoldSet(path, ev.read_gold_parquet(path, id_column=column), by_line=False, text=False)
-
-
-class _Value:
-    """Stands in for a broadcast variable when decoding on the driver."""
-
-    def __init__(self, value) -> None:
-        self.value = value
 
 
 def _rows_by_line(spark, store: RunStore, cfg: RunConfig, lines: list) -> dict:
@@ -212,7 +205,7 @@ class GoldMonitor:
 
         started = time.time()
         cfg = self.cfg
-        decode = make_decoder(model, cfg.direction_list, _Value(self.tables(table_path)), dense,
+        decode = make_decoder(model, cfg.direction_list, Held(self.tables(table_path)), dense,
                               method=cfg.decoding, threshold=cfg.posterior_threshold,
                               symmetrization=cfg.symmetrization)
         predicted = {c: {} for c in SCORED_COLUMNS}

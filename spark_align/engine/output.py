@@ -388,7 +388,8 @@ def dictionary_columns(table: pa.Table) -> list[str]:
 GROUP = "_output_group"  # the output pass's grouping column (never written)
 
 
-def write_output(spark, store: RunStore, decoder, *, checkpoint: str, directions, extra: dict) -> dict:
+def write_output(spark, store: RunStore, decoder, *, checkpoint: str, directions, extra: dict,
+                 decoded=None) -> dict:
     """Decode the store's ``encoded/blocks``, join to the snapshot, write ``RUN_DIR/output`` and commit
     ``output.json``.
 
@@ -401,7 +402,9 @@ def write_output(spark, store: RunStore, decoder, *, checkpoint: str, directions
     written: 10.0 s, against 19.6 s for Spark's join, sort by ``_row`` and the same pyarrow writer, and
     Spark's Parquet writer alone took 10 s for the decoded link columns. Where Spark cannot hand the
     corpus's columns to Python (:func:`output_writer`), the links are unpacked, joined and sorted by
-    Spark and written by its own writer, as before.
+    Spark and written by its own writer, as before. ``decoded``: the decoded rows already made
+    (``engine.shipping.decode_routed``, for tables no Python worker should hold whole); ``decoder`` is
+    then not used.
     """
     from pyspark.sql import functions as F
 
@@ -409,13 +412,14 @@ def write_output(spark, store: RunStore, decoder, *, checkpoint: str, directions
     from spark_align.store import fsspec_url
 
     store.remove("output.json")
-    units = block_units(store)
-    sc = spark.sparkContext
-    units_df = sc.parallelize(units, max(1, min(len(units), UNITS_PER_CORE * sc.defaultParallelism))).toDF(
-        "path string, row_group int")
-    decoded = units_df.mapInArrow(decode_units(decoder, fsspec_url(store.spark_path("encoded", "blocks")),
-                                               fsspec_url(store.spark_path("encoded", "hints")), tuple(directions)),
-                                  PACKED_SCHEMA)
+    if decoded is None:
+        units = block_units(store)
+        sc = spark.sparkContext
+        units_df = sc.parallelize(units, max(1, min(len(units), UNITS_PER_CORE * sc.defaultParallelism))).toDF(
+            "path string, row_group int")
+        decoded = units_df.mapInArrow(decode_units(decoder, fsspec_url(store.spark_path("encoded", "blocks")),
+                                                   fsspec_url(store.spark_path("encoded", "hints")),
+                                                   tuple(directions)), PACKED_SCHEMA)
     if len(directions) == 1:
         other = "alignment_reverse" if directions[0] == "forward" else "alignment_forward"
         decoded = decoded.drop(other, "score_reverse" if directions[0] == "forward" else "score_forward")

@@ -7,7 +7,7 @@ import time
 from collections.abc import Callable
 
 from spark_align.config import RunConfig
-from spark_align.engine import em, ingest, output, tables
+from spark_align.engine import em, ingest, output, shipping, tables
 from spark_align.engine import gold as gold_mod
 from spark_align.errors import CheckpointError, CheckpointMismatchError, InputError, RunDirError
 from spark_align.fingerprint import corpus_fingerprint
@@ -176,16 +176,25 @@ def train(spark, cfg: RunConfig, run_dir: str, *, resume: bool = False, resume_f
     last = cfg.stages[state.stage_index]
     model = last.build()
     src_v, tgt_v = encoded["src_vocab_size"], encoded["tgt_vocab_size"]
-    # Each Python worker reads the final table itself: the driver never holds it.
+    # Each Python worker reads the final table itself (the driver never holds it), unless the table is
+    # one the E-step would ship per unit: then each decoding task gets its units' entries the same way.
     tables_bc = tables.table_source(state.table_path, cfg.direction_list, src_v, tgt_v)
+    n_entries = None if state.table_path is None else shipping.table_entries(spark, state.table_path)
     try:
         decoder = output.make_decoder(model, cfg.direction_list, tables_bc, state.dense, method=cfg.decoding,
                                       threshold=cfg.posterior_threshold, symmetrization=cfg.symmetrization)
+        decoded = None
+        if shipping.choose_shipping(cfg.shipping, n_entries, cfg.table_budget_mb) == "join":
+            n_units = len(trainer.block_units())
+            decoded = shipping.decode_routed(
+                spark, store, state.table_path, decoder, n_buckets=trainer.n_reducers(),
+                n_tasks=max(1, min(n_units, output.UNITS_PER_CORE * spark.sparkContext.defaultParallelism)))
         manifest = output.write_output(
             spark, store, decoder, checkpoint=f"{last.model}:{state.iteration}",
-            directions=cfg.direction_list,
+            directions=cfg.direction_list, decoded=decoded,
             extra={"config": cfg.to_dict(), "corpus_fingerprint": fingerprint, "summary": encoded,
                    "stage_index": state.stage_index, **(run_info or {})})
+        store.remove(shipping.DECODED)
     finally:
         tables_bc.unpersist()
     log(f"output: {store.spark_path('output')} ({manifest['rows']} rows, {manifest['aligned']} aligned, "

@@ -296,6 +296,21 @@ def unit_entries(keys: np.ndarray, records: list[bytes], directions: tuple[str, 
     return out
 
 
+def units_with_records(task_index: int, routed, n_tasks: int, n_units: int):
+    """(unit, its records) for every unit of task ``task_index`` (:func:`task_of`) in order, from the
+    task's routed (unit, record) pairs sorted by unit; RuntimeError for a record of another unit."""
+    routed = iter(routed)
+    ahead = next(routed, None)
+    for unit in (u for u in range(n_units) if task_of(u, n_tasks, n_units) == task_index):
+        records = []
+        while ahead is not None and ahead[0] == unit:
+            records.append(ahead[1])
+            ahead = next(routed, None)
+        yield unit, records
+    if ahead is not None:
+        raise RuntimeError(f"task {task_index}: entries arrived for unit {ahead[0]}, not one of its own")
+
+
 def make_join_estep(model, directions: tuple[str, ...], dense: dict[str, dict], *, blocks_url: str,
                     units: list[tuple[str, int]], n_tasks: int, n_buckets: int, flush_keys: int = TASK_KEYS):
     """The E-step of the join path: (task index, its (unit, record) pairs sorted by unit) -> (bucket,
@@ -362,17 +377,8 @@ def make_join_estep(model, directions: tuple[str, ...], dense: dict[str, dict], 
                     yield from flush()
             fold(task)
 
-        mine = [u for u in range(len(units)) if task_of(u, n_tasks, len(units)) == task_index]
-        routed = iter(routed)
-        ahead = next(routed, None)
-        for unit in mine:
-            records = []
-            while ahead is not None and ahead[0] == unit:
-                records.append(ahead[1])
-                ahead = next(routed, None)
+        for unit, records in units_with_records(task_index, routed, n_tasks, len(units)):
             yield from run_unit(unit, records)
-        if ahead is not None:
-            raise RuntimeError(f"E-step task {task_index}: entries arrived for unit {ahead[0]}, not one of its own")
         records = flush()
         note_task_memory("join")
         values = [time.perf_counter() - started, seconds["lookup"], seconds["add"], 0.0, seconds["read"],
@@ -383,11 +389,11 @@ def make_join_estep(model, directions: tuple[str, ...], dense: dict[str, dict], 
     return estep
 
 
-def join_payloads(spark, store, units: list[tuple[str, int]], table_path: str, model, directions: tuple[str, ...],
-                  dense: dict[str, dict], *, n_tasks: int, n_buckets: int, flush_keys: int = TASK_KEYS):
-    """The (bucket, payload) records of one iteration with per-unit parameter shipping, as an RDD (what
-    ``engine.mstep.reduce_and_write`` takes): the lookup tasks (one per table bucket) route each unit's
-    entries to its E-step task (:func:`task_of`), sorted by unit.
+def routed_entries(spark, store, units: list[tuple[str, int]], table_path: str, directions: tuple[str, ...], *,
+                   n_tasks: int, n_buckets: int):
+    """Every unit's entries of the table at ``table_path`` as an RDD of (unit, record) pairs
+    (:func:`make_route_lookup`), in ``n_tasks`` partitions (:func:`task_of`) sorted by unit: one lookup
+    task per table bucket routes them.
 
     A table the reducers wrote in ``n_buckets`` buckets is read file by file, one per lookup task;
     any other (the seeded random initial table, or one written with another number of reducers) is
@@ -428,8 +434,70 @@ def join_payloads(spark, store, units: list[tuple[str, int]], table_path: str, m
 
         looked = (sc.parallelize(layout.names, max(1, min(len(layout.names), 4 * sc.defaultParallelism)))
                   .flatMap(by_bucket).partitionBy(n_buckets, lambda p: p).mapPartitionsWithIndex(merged))
+    n_units = len(units)
+    return looked.repartitionAndSortWithinPartitions(n_tasks, lambda u: task_of(u, n_tasks, n_units))
+
+
+def join_payloads(spark, store, units: list[tuple[str, int]], table_path: str, model, directions: tuple[str, ...],
+                  dense: dict[str, dict], *, n_tasks: int, n_buckets: int, flush_keys: int = TASK_KEYS):
+    """The (bucket, payload) records of one iteration with per-unit parameter shipping, as an RDD (what
+    ``engine.mstep.reduce_and_write`` takes): :func:`routed_entries` to the E-step tasks."""
+    from spark_align.store import fsspec_url
+
     estep = make_join_estep(model, directions, dense, blocks_url=fsspec_url(store.spark_path("encoded", "blocks")),
                             units=units, n_tasks=n_tasks, n_buckets=n_buckets, flush_keys=flush_keys)
-    n_units = len(units)
-    return (looked.repartitionAndSortWithinPartitions(n_tasks, lambda u: task_of(u, n_tasks, n_units))
-            .mapPartitionsWithIndex(estep))
+    return routed_entries(spark, store, units, table_path, directions, n_tasks=n_tasks,
+                          n_buckets=n_buckets).mapPartitionsWithIndex(estep)
+
+
+DECODED = "decoded"  # the routed output pass's decoded rows, removed once the output is written
+
+
+def decode_routed(spark, store, table_path: str, decoder, *, n_tasks: int, n_buckets: int):
+    """The output pass's decoded rows (``engine.output.PACKED_SCHEMA``) with per-unit shipping: each
+    decoding task gets its units' entries through :func:`routed_entries` (no Python worker reads the
+    whole table) and writes its units' rows under ``RUN_DIR/decoded/`` (one Parquet file per unit),
+    which are returned as a DataFrame for the output pass to join to the corpus."""
+    from spark_align.engine.mstep import block_units
+    from spark_align.store import fsspec_url
+
+    units = block_units(store)
+    blocks_url = fsspec_url(store.spark_path("encoded", "blocks"))
+    out_url = fsspec_url(store.spark_path(DECODED))
+    directions = decoder.directions
+    store.remove(DECODED)
+
+    def decode(task_index, routed):
+        import dataclasses
+
+        import fsspec
+        import pyarrow.parquet as pq
+
+        from spark_align.engine.ingest import blocks_from_batch
+        from spark_align.engine.mstep import read_unit
+        from spark_align.engine.tables import Held
+
+        keep_freed_memory()
+        fs, _root = fsspec.core.url_to_fs(blocks_url)
+        out_fs, out_root = fsspec.core.url_to_fs(out_url)
+        out_fs.makedirs(out_root, exist_ok=True)
+        for unit, records in units_with_records(task_index, routed, n_tasks, len(units)):
+            batches = list(read_unit(fs, *units[unit]))
+            keys = [block.dict_keys for batch in batches for _id, _rows, block in blocks_from_batch(batch)]
+            keys = ragged.distinct(np.concatenate(keys)) if keys else np.zeros(0, np.int64)
+            unit_decoder = dataclasses.replace(decoder, tables_bc=Held(unit_entries(keys, records, directions,
+                                                                                     n_buckets, unit)))
+            rows = list(unit_decoder(batches, packed=True))
+            if rows:
+                target = posixpath.join(out_root, f"part-{unit:06d}.parquet")
+                tmp = f"{target}.tmp-{time.time_ns()}"  # a retried task's attempt replaces the file whole
+                with out_fs.open(tmp, "wb") as fh:
+                    pq.write_table(pa.Table.from_batches(rows), fh, compression="lz4_raw")
+                out_fs.mv(tmp, target)
+            yield unit
+
+    decoded = routed_entries(spark, store, units, table_path, directions, n_tasks=n_tasks,
+                             n_buckets=n_buckets).mapPartitionsWithIndex(decode).collect()
+    if sorted(decoded) != list(range(len(units))):
+        raise RuntimeError(f"decoding: {len(units) - len(set(decoded))} of {len(units)} units were not written")
+    return spark.read.parquet(store.spark_path(DECODED))

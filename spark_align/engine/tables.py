@@ -95,6 +95,14 @@ def uniform_tables(directions: tuple[str, ...], src_vocab_size: int, tgt_vocab_s
     return {d: DirectionTable(None, None, 1.0 / size[d]) for d in directions}
 
 
+class Held:
+    """Stands in for a broadcast variable over tables already at hand (``.value``): the driver's, when
+    it decodes gold pairs, or one unit's routed entries (``engine.shipping``)."""
+
+    def __init__(self, value) -> None:
+        self.value = value
+
+
 _WORKER_CACHE: dict = {}
 _LAYOUT = "layout"  # the cache's entry for the last table's TableLayout
 _SCRATCH = "scratch"  # the cache's entry for worker_scratch()

@@ -16,7 +16,8 @@ from spark_align.engine.run import train
 from spark_align.errors import ConfigError
 from spark_align.kernels import ragged
 from spark_align.store import RunStore
-from tests.engine.helpers import TOY_SOURCE, TOY_TARGET, config, manifest, read_table, write_parquet, write_text
+from tests.engine.helpers import (TOY_SOURCE, TOY_TARGET, config, manifest, read_output, read_table, write_parquet,
+                                  write_text)
 
 
 # -- the size rule (no Spark) --------------------------------------------------------------
@@ -331,3 +332,20 @@ def test_join_shipping_matches_nltk_ibm1(spark, tmp_path):
         want = reference.translation_table[vocab["target"][ti]][None if si == 0 else vocab["source"][si]]
         assert p == pytest.approx(want, rel=1e-9, abs=1e-15)
     assert ragged.NULL_ID == 0
+
+
+@pytest.mark.slow
+def test_the_output_pass_decodes_per_unit_as_with_the_whole_table(spark, tmp_path):
+    """With per-unit shipping, the output pass's decoding tasks get their units' entries the same way
+    (no Python worker reads the whole table): the output is the whole-table decoding's, row for row, and
+    the decoded rows it went through are removed once the output is written."""
+    s, t = write_text(tmp_path, TOY_SOURCE * 3, TOY_TARGET * 3)
+    outputs = {}
+    for path in ("join", "broadcast"):
+        run_dir = str(tmp_path / path)
+        train(spark, config(CorpusConfig(source_text=s, target_text=t), "ibm1:2,hmm:1", block_size=4,
+                            shipping=path), run_dir, log=lambda _: None)
+        outputs[path] = read_output(run_dir)
+        assert not os.path.exists(os.path.join(run_dir, shipping.DECODED))
+    assert outputs["join"].num_rows == len(TOY_SOURCE) * 3
+    assert outputs["join"].equals(outputs["broadcast"])
