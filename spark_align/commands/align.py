@@ -4,7 +4,7 @@ from __future__ import annotations
 import argparse
 
 from spark_align.commands import common
-from spark_align.config import DECODINGS, SYMMETRIZATIONS
+from spark_align.config import DECODINGS, SHIPPINGS, SYMMETRIZATIONS
 
 NAME = "align"
 HELP = "align a new corpus with the frozen tables of a trained run (no training)"
@@ -25,6 +25,9 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     g.add_argument("--decoding", choices=DECODINGS, help="as in train (default: the run's)")
     g.add_argument("--symmetrization", choices=SYMMETRIZATIONS, help="as in train (default: the run's)")
     g.add_argument("--posterior-threshold", type=float, help="as in train (default: the run's)")
+    g.add_argument("--shipping", choices=SHIPPINGS,
+                   help="as in train, for the decoding tasks (default: the run's; the size rule uses the run's "
+                        "--table-budget-mb)")
     g.add_argument("--overwrite", action="store_true", help="replace an earlier aligned output in --out")
     common.add_spark_options(p)
 
@@ -37,5 +40,6 @@ def run(args: argparse.Namespace) -> int:
         parse_checkpoint(args.checkpoint)
     align_corpus(common.session(args), args.run, corpus, args.out, checkpoint=args.checkpoint,
                  decoding=args.decoding, symmetrization=args.symmetrization,
-                 posterior_threshold=args.posterior_threshold, overwrite=args.overwrite, log=common.printer)
+                 posterior_threshold=args.posterior_threshold, shipping=args.shipping, overwrite=args.overwrite,
+                 log=common.printer)
     return 0

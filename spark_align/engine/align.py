@@ -43,6 +43,9 @@ import numpy as np
 
 from spark_align.config import CorpusConfig, RunConfig
 from spark_align.engine import ingest, output, tables
+from spark_align.engine import shipping as shipping_mod
+from spark_align.engine.em import n_reducers
+from spark_align.engine.mstep import block_units
 from spark_align.errors import CheckpointError, ConfigError, RunDirError
 from spark_align.kernels import ragged
 from spark_align.store import FORMAT_VERSION, Checkpoint, RunStore
@@ -127,18 +130,33 @@ def checkpoint_model(run: TrainedRun, ckpt: Checkpoint):
     return model, {d: dense.get(d, model.init_dense(None)) for d in run.config.direction_list}
 
 
+def checkpoint_table_path(run: TrainedRun, ckpt: Checkpoint) -> str | None:
+    """Where the checkpoint's table is (None: it has none, the uniform start)."""
+    if "table" not in ckpt.manifest:
+        return None
+    return run.store.spark_path(RunStore.checkpoint_dir(ckpt.stage_index, ckpt.model, ckpt.iteration), "lex")
+
+
 def checkpoint_tables(spark, run: TrainedRun, ckpt: Checkpoint) -> dict[str, tables.DirectionTable]:
     """The checkpoint's translation tables as broadcastable arrays (uniform if it has none)."""
     directions = run.config.direction_list
-    if "table" not in ckpt.manifest:
+    path = checkpoint_table_path(run, ckpt)
+    if path is None:
         return tables.uniform_tables(directions, run.encoded["src_vocab_size"], run.encoded["tgt_vocab_size"])
-    rel = RunStore.checkpoint_dir(ckpt.stage_index, ckpt.model, ckpt.iteration)
-    return tables.read_tables(spark, run.store.spark_path(rel, "lex"), directions)
+    return tables.read_tables(spark, path, directions)
 
 
 def unknown_ids(src_vocab_size: int, tgt_vocab_size: int) -> tuple[int, int]:
     """Ids given to words missing from the vocabularies: one past the largest id of each side."""
     return src_vocab_size + 1, tgt_vocab_size + 1
+
+
+def unknown_entries(src_vocab_size: int, tgt_vocab_size: int) -> dict[str, tuple[np.ndarray, float]]:
+    """direction -> (key, probability) of its one entry for an unknown word: t(unknown | NULL) = 1 / (V + 1)
+    (see the module docstring)."""
+    src_unk, tgt_unk = unknown_ids(src_vocab_size, tgt_vocab_size)
+    return {"forward": (ragged.make_key(np.array([ragged.NULL_ID]), np.array([tgt_unk])), 1.0 / (tgt_vocab_size + 1)),
+            "reverse": (ragged.make_key(np.array([src_unk]), np.array([ragged.NULL_ID])), 1.0 / (src_vocab_size + 1))}
 
 
 def with_unknown_words(tabs: dict[str, tables.DirectionTable], src_vocab_size: int,
@@ -147,11 +165,7 @@ def with_unknown_words(tabs: dict[str, tables.DirectionTable], src_vocab_size: i
 
     Everything else involving an unknown word is absent, so lookups give the floor.
     """
-    src_unk, tgt_unk = unknown_ids(src_vocab_size, tgt_vocab_size)
-    extra = {"forward": (ragged.make_key(np.array([ragged.NULL_ID]), np.array([tgt_unk])),
-                         1.0 / (tgt_vocab_size + 1)),
-             "reverse": (ragged.make_key(np.array([src_unk]), np.array([ragged.NULL_ID])),
-                         1.0 / (src_vocab_size + 1))}
+    extra = unknown_entries(src_vocab_size, tgt_vocab_size)
     out = {}
     for direction, table in tabs.items():
         if table.constant is not None:  # a uniform table already covers every word
@@ -186,13 +200,15 @@ def _claim(out: RunStore, overwrite: bool) -> None:
 
 def align_corpus(spark, run_dir: str, corpus: CorpusConfig, out_dir: str, *, checkpoint: str | None = None,
                  decoding: str | None = None, symmetrization: str | None = None,
-                 posterior_threshold: float | None = None, overwrite: bool = False,
+                 posterior_threshold: float | None = None, shipping: str | None = None, overwrite: bool = False,
                  log: Callable[[str], None] = print) -> dict:
     """Align ``corpus`` with the tables of a checkpoint of ``run_dir``; write ``out_dir``.
 
     ``corpus`` says where the new pairs are (path or text files, column names);
     its tokenization and filter settings are replaced by the run's. Decoding
-    settings default to the run's. Returns the output manifest.
+    settings and the shipping of the table to the decoding tasks default to the run's (per-unit
+    shipping: ``engine.shipping.decode_routed``, with the unknown words' entries added per unit;
+    the driver then never reads the table). Returns the output manifest.
     """
     from pyspark.sql import functions as F
 
@@ -202,7 +218,8 @@ def align_corpus(spark, run_dir: str, corpus: CorpusConfig, out_dir: str, *, che
     if out.url == run.store.url or out.exists("run.json"):
         raise RunDirError(f"--out {out.url} is a run directory; choose a new directory for the aligned output")
     overrides = {k: v for k, v in (("decoding", decoding), ("symmetrization", symmetrization),
-                                   ("posterior_threshold", posterior_threshold)) if v is not None}
+                                   ("posterior_threshold", posterior_threshold), ("shipping", shipping))
+                 if v is not None}
     cfg = dataclasses.replace(run.config, corpus=run_corpus_config(run.config, corpus), **overrides)
     ckpt = resolve_checkpoint(run, checkpoint, log)
     model, dense = checkpoint_model(run, ckpt)
@@ -227,17 +244,30 @@ def align_corpus(spark, run_dir: str, corpus: CorpusConfig, out_dir: str, *, che
         ingest.write_blocks(blocks, out.spark_path("encoded", "blocks"), cfg.block_size)
     finally:
         tokens.unpersist()
-    tabs = with_unknown_words(checkpoint_tables(spark, run, ckpt), src_v, tgt_v)
-    tables_bc = spark.sparkContext.broadcast(tabs)
+    table_path = checkpoint_table_path(run, ckpt)
+    n_entries = None if table_path is None else shipping_mod.table_entries(spark, table_path)
+    routed = shipping_mod.choose_shipping(cfg.shipping, n_entries, cfg.table_budget_mb) == "join"
+    # per unit: nothing table-sized on the driver or in any Python worker; else the table broadcast
+    tables_bc = (tables.Held(None) if routed else
+                 spark.sparkContext.broadcast(with_unknown_words(checkpoint_tables(spark, run, ckpt), src_v, tgt_v)))
     try:
         decoder = output.make_decoder(model, cfg.direction_list, tables_bc, dense, method=cfg.decoding,
                                       threshold=cfg.posterior_threshold, symmetrization=cfg.symmetrization)
+        decoded = None
+        if routed:
+            n_units = len(block_units(out))
+            decoded = shipping_mod.decode_routed(
+                spark, out, table_path, decoder, n_buckets=n_reducers(spark),
+                n_tasks=max(1, min(n_units, output.UNITS_PER_CORE * spark.sparkContext.defaultParallelism)),
+                extra=unknown_entries(src_v, tgt_v))
         manifest = output.write_output(
-            spark, out, decoder, checkpoint=ckpt.name, directions=cfg.direction_list,
+            spark, out, decoder, checkpoint=ckpt.name, directions=cfg.direction_list, decoded=decoded,
             extra={"kind": "align", "run": run.store.url, "stage_index": ckpt.stage_index,
                    "config": cfg.to_dict(), "n_input_rows": n_rows, "unknown_tokens": unknown})
     finally:
-        tables_bc.unpersist()
+        if not routed:
+            tables_bc.unpersist()
+    out.remove(shipping_mod.DECODED)
     out.remove("encoded")
     out.remove("corpus")
     log(f"aligned output: {out.spark_path('output')} ({manifest['rows']} rows, {manifest['aligned']} aligned, "

@@ -35,6 +35,11 @@ def tasks_per_core(value: str) -> int:
     return whole_number_setting(TASKS_PER_CORE_CONF, value)
 
 
+def n_reducers(spark) -> int:
+    """Reducers of an iteration, and so buckets of the table it writes: ``spark.sql.shuffle.partitions``."""
+    return max(1, int(spark.conf.get("spark.sql.shuffle.partitions")))
+
+
 def whole_number_setting(name: str, value: str) -> int:
     """A Spark setting of ours that must be a whole number of at least 1; ConfigError otherwise."""
     try:
@@ -118,7 +123,7 @@ class Trainer:
         return self._units
 
     def n_reducers(self) -> int:
-        return max(1, int(self.spark.conf.get("spark.sql.shuffle.partitions")))
+        return n_reducers(self.spark)
 
     # -- one iteration -------------------------------------------------------------------
     def iterate(self, model, state: TrainState) -> tuple[str, dict, dict]:

@@ -453,11 +453,14 @@ def join_payloads(spark, store, units: list[tuple[str, int]], table_path: str, m
 DECODED = "decoded"  # the routed output pass's decoded rows, removed once the output is written
 
 
-def decode_routed(spark, store, table_path: str, decoder, *, n_tasks: int, n_buckets: int):
+def decode_routed(spark, store, table_path: str, decoder, *, n_tasks: int, n_buckets: int,
+                  extra: dict[str, tuple[np.ndarray, float]] | None = None):
     """The output pass's decoded rows (``engine.output.PACKED_SCHEMA``) with per-unit shipping: each
     decoding task gets its units' entries through :func:`routed_entries` (no Python worker reads the
     whole table) and writes its units' rows under ``RUN_DIR/decoded/`` (one Parquet file per unit),
-    which are returned as a DataFrame for the output pass to join to the corpus."""
+    which are returned as a DataFrame for the output pass to join to the corpus. ``extra``: direction
+    -> (keys, probability) of entries the table lacks, set in every unit that has those keys (the
+    unknown words' entries of ``engine.align``)."""
     from spark_align.engine.mstep import block_units
     from spark_align.store import fsspec_url
 
@@ -476,6 +479,7 @@ def decode_routed(spark, store, table_path: str, decoder, *, n_tasks: int, n_buc
         from spark_align.engine.ingest import blocks_from_batch
         from spark_align.engine.mstep import read_unit
         from spark_align.engine.tables import Held
+        from spark_align.kernels import lookup
 
         keep_freed_memory()
         fs, _root = fsspec.core.url_to_fs(blocks_url)
@@ -485,8 +489,12 @@ def decode_routed(spark, store, table_path: str, decoder, *, n_tasks: int, n_buc
             batches = list(read_unit(fs, *units[unit]))
             keys = [block.dict_keys for batch in batches for _id, _rows, block in blocks_from_batch(batch)]
             keys = ragged.distinct(np.concatenate(keys)) if keys else np.zeros(0, np.int64)
-            unit_decoder = dataclasses.replace(decoder, tables_bc=Held(unit_entries(keys, records, directions,
-                                                                                     n_buckets, unit)))
+            entries = unit_entries(keys, records, directions, n_buckets, unit)
+            for direction, (extra_keys, prob) in (extra or {}).items():
+                if direction in entries:
+                    position, found = lookup.positions(keys, extra_keys)
+                    entries[direction].probs[position[found]] = prob
+            unit_decoder = dataclasses.replace(decoder, tables_bc=Held(entries))
             rows = list(unit_decoder(batches, packed=True))
             if rows:
                 target = posixpath.join(out_root, f"part-{unit:06d}.parquet")

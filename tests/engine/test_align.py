@@ -93,6 +93,15 @@ def test_new_corpus_with_unknown_words_and_mismatched_pairs(spark, trained, tmp_
         assert result["skip_reason"][k] is None
     assert result["alignment"][2 * N_SWAPPED + 1] == []  # nothing known on either side: no links
 
+    # The table shipped per unit to the decoding tasks (neither the driver nor any Python worker reads
+    # it whole): the same output, scores included, so the unknown words' entries were there too.
+    joined = tmp_path / "aligned-join"
+    align_corpus(spark, trained["run"], CorpusConfig(path=str(corpus), source_column="de", target_column="en",
+                                                     id_column="doc"),
+                 str(joined), checkpoint="ibm1:2", shipping="join", log=quiet)
+    assert pq.read_table(joined / "output").sort_by("_row").equals(pq.read_table(out / "output").sort_by("_row"))
+    assert sorted(os.listdir(joined)) == ["align.json", "output", "output.json"]
+
 
 def test_unknown_word_fallback_entries():
     keys = ragged.make_key(np.array([0, 1, 2]), np.array([1, 1, 2]))
