@@ -38,9 +38,10 @@ core time:
 * ``task_rss_mb``: peak resident memory of the Python workers, which run the E-step tasks and then
   the reducers (``ru_maxrss`` noted at the end of each E-step task and each reducer when
   ``SPARK_ALIGN_BENCH_TASK_MEMORY_DIR`` is set; max over them), and the same over the notes of E-step
-  tasks (``estep_rss_mb``) and of reducers (``reduce_rss_mb``) apart. A reused Python worker's peak
+  tasks (``estep_rss_mb``), of reducers (``reduce_rss_mb``) and of the join path's lookup tasks
+  (``lookup_rss_mb``) apart. A reused Python worker's peak
   includes its earlier tasks', so ``--memory`` turns worker reuse off (a fresh worker per task) and
-  the two are each kind's own peak;
+  the three are each kind's own peak;
 * ``output_s``: seconds of the output pass (decoding every pair, joining to the corpus, writing;
   ``output.json``);
 * ``driver_rss_mb``: peak resident memory of the driver's Python process (it plans the jobs and
@@ -137,11 +138,13 @@ def _child_train(args) -> None:
                      "pruned": {d: m["metrics"][d].get("pruned") for d in dirs}})
     task_kb = {name: int(Path(args.memdir, name).read_text()) for name in os.listdir(args.memdir)}
     reduce_kb = [kb for name, kb in task_kb.items() if name.startswith("reduce-")]
-    estep_kb = [kb for name, kb in task_kb.items() if not name.startswith("reduce-")]
+    lookup_kb = [kb for name, kb in task_kb.items() if name.startswith("lookup-")]
+    estep_kb = [kb for name, kb in task_kb.items() if not name.startswith(("reduce-", "lookup-"))]
     output_s = RunStore(args.run).read_json("output.json")["seconds"]
     print(json.dumps({"iterations": rows, "total_s": total, "output_s": output_s,
                       "task_rss_mb": max(task_kb.values(), default=0) / 1024,
                       "estep_rss_mb": max(estep_kb, default=0) / 1024, "reduce_rss_mb": max(reduce_kb, default=0) / 1024,
+                      "lookup_rss_mb": max(lookup_kb, default=0) / 1024,
                       "driver_rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024}))
     spark.stop()
 
@@ -215,7 +218,8 @@ def fmt(r: dict) -> str:
             f" other E-step {pct('estep_other')}, reducers {pct('reduce_share')}, rest {pct('rest_share')}, of which"
             f" the driver between jobs {pct('driver_share')})\n"
             f"    task RSS {r['task_rss_mb']:6.0f} MB (noted by E-step tasks {r.get('estep_rss_mb', float('nan')):.0f}, "
-            f"by reducers {r.get('reduce_rss_mb', float('nan')):.0f})  "
+            f"by reducers {r.get('reduce_rss_mb', float('nan')):.0f}, by the join's lookups "
+            f"{r.get('lookup_rss_mb', float('nan')):.0f})  "
             f"driver RSS {r['driver_rss_mb']:5.0f} MB  output pass {r.get('output_s', float('nan')):.1f} s  "
             f"(load {r['load_avg']:.1f}, total {r['total_s']:.0f} s)")
 

@@ -258,6 +258,7 @@ def make_route_lookup(routes_url: str, directions: tuple[str, ...]):
             parts = [per_dir.get(d, {}).get(u, np.zeros(0)) for d in range(len(DIRS))]
             head = np.array([p, *(len(x) for x in parts)], np.int64)
             yield u, head.tobytes() + b"".join(x.tobytes() for x in parts)
+        note_task_memory("lookup")
 
     return looked_up
 
