@@ -278,7 +278,7 @@ def test_join_and_broadcast_shipping_give_bit_identical_tables_and_pruning(spark
     for d in ("forward", "reverse"):
         assert (manifest(joined, "01-hmm", 1)["metrics"][d]["loglik"]
                 == manifest(base_broadcast, "01-hmm", 1)["metrics"][d]["loglik"])
-    assert os.path.exists(os.path.join(joined, *shipping.routes_commit(4).split("/")))  # 4 reducers
+    assert os.path.exists(os.path.join(joined, *shipping.routes_commit(em.n_reducers(spark)).split("/")))
 
     # A join task whose counts reach joinTaskKeys distinct keys sends them on and starts again: more
     # payloads, the same sums (in-process, over the units' joined entries); and through Spark, with the
