@@ -185,7 +185,7 @@ def ensure_routes(spark, store, units: list[tuple[str, int]], n_buckets: int) ->
 # Routes files: keys delta-coded (ascending within each unit); directions and units dictionary-coded
 # (their long runs become run lengths).
 ROUTES_WRITE = {"compression": "lz4_raw", "use_dictionary": ["dir", "unit"],
-                "column_encoding": {"key": "DELTA_BINARY_PACKED"}}
+                "column_encoding": {"key": "DELTA_BINARY_PACKED"}, "row_group_size": 1 << 20}
 
 
 def unit_routes(unit: int, keys: np.ndarray, n_buckets: int):
@@ -224,40 +224,54 @@ def bucket_entries(part) -> dict[int, tuple[np.ndarray, np.ndarray]]:
     return out
 
 
-_RECORD_HEAD = 1 + len(DIRS)  # int64s before a record's probabilities: its bucket, then a count per direction
+_RECORD_HEAD = 3  # int64s before a record's probabilities: its bucket, its direction, their number
+ROUTE_BATCH_ROWS = 1 << 20  # routes rows a lookup task reads at a time (and rows per routes row group)
 
 
 def make_route_lookup(routes_url: str, directions: tuple[str, ...]):
-    """The lookup of bucket ``p``: (p, its table entries) -> (unit, record) for every unit with keys
-    there. A record is int64 [p, n per direction] then float64 probabilities: per direction, the
-    table's entry for each of the unit's keys of bucket ``p`` (ascending), ``MIN_PROB`` where it has
-    none."""
+    """The lookup of bucket ``p``: (p, its table entries) -> (unit, record) for every unit and direction
+    with keys there. A record is int64 [p, direction index, n] then n float64 probabilities: the table's
+    entry for each of the unit's keys of bucket ``p`` in that direction (ascending), ``MIN_PROB`` where
+    it has none. The routes file is read :data:`ROUTE_BATCH_ROWS` rows at a time (a (direction, unit) run
+    cut by a batch is kept for the next), so a lookup task holds one bucket of the table, not of the
+    routes, which grow with the corpus."""
+
+    def records(p: int, rows: list[np.ndarray], entries: dict[int, tuple[np.ndarray, np.ndarray]]):
+        from spark_align.kernels import lookup
+
+        dirs, unit, keys = rows
+        for d in (DIRS.index(x) for x in directions):
+            lo, hi = np.searchsorted(dirs, [d, d + 1])  # sorted by direction first
+            if lo == hi:
+                continue
+            table_keys, table_probs = entries.get(d, (np.zeros(0, np.int64), np.zeros(0)))
+            # keys ascend within each unit: the search gallops forward and restarts at each unit
+            probs = lookup.find(table_keys, table_probs, keys[lo:hi], MIN_PROB)[2]
+            units_d = unit[lo:hi]
+            cuts = np.flatnonzero(np.diff(units_d)) + 1
+            for u, segment in zip(units_d[np.concatenate([[0], cuts])].tolist(), np.split(probs, cuts)):
+                yield u, np.array([p, d, len(segment)], np.int64).tobytes() + segment.tobytes()
 
     def looked_up(p: int, entries: dict[int, tuple[np.ndarray, np.ndarray]]):
         import fsspec
         import pyarrow.parquet as pq
 
         from spark_align.engine.mstep import part_name
-        from spark_align.kernels import lookup
 
         fs, root = fsspec.core.url_to_fs(routes_url)
+        carry = None
         with fs.open(posixpath.join(root, part_name(p)), "rb") as fh:
-            routes = pq.read_table(fh)
-        dirs, unit, keys = (routes.column(name).to_numpy() for name in ("dir", "unit", "key"))
-        per_dir = {}
-        for d in (DIRS.index(x) for x in directions):
-            lo, hi = np.searchsorted(dirs, [d, d + 1])
-            table_keys, table_probs = entries.get(d, (np.zeros(0, np.int64), np.zeros(0)))
-            # keys ascend within each unit: the search gallops forward and restarts at each unit
-            probs = lookup.find(table_keys, table_probs, keys[lo:hi], MIN_PROB)[2]
-            units_d = unit[lo:hi]
-            cuts = np.flatnonzero(np.diff(units_d)) + 1
-            per_dir[d] = dict(zip(units_d[np.concatenate([[0], cuts])].tolist(), np.split(probs, cuts))
-                              if len(units_d) else [])
-        for u in sorted(set().union(*(x.keys() for x in per_dir.values()))):
-            parts = [per_dir.get(d, {}).get(u, np.zeros(0)) for d in range(len(DIRS))]
-            head = np.array([p, *(len(x) for x in parts)], np.int64)
-            yield u, head.tobytes() + b"".join(x.tobytes() for x in parts)
+            for batch in pq.ParquetFile(fh).iter_batches(batch_size=ROUTE_BATCH_ROWS, columns=["dir", "unit", "key"]):
+                rows = [batch.column(i).to_numpy() for i in range(3)]
+                if carry is not None:
+                    rows = [np.concatenate([a, b]) for a, b in zip(carry, rows)]
+                starts = np.flatnonzero((rows[0][1:] != rows[0][:-1]) | (rows[1][1:] != rows[1][:-1])) + 1
+                last = int(starts[-1]) if len(starts) else 0  # the last run may go on in the next batch
+                carry = [a[last:] for a in rows]
+                if last:
+                    yield from records(p, [a[:last] for a in rows], entries)
+        if carry is not None and len(carry[0]):
+            yield from records(p, carry, entries)
         note_task_memory("lookup")
 
     return looked_up
@@ -268,12 +282,12 @@ def unit_entries(keys: np.ndarray, records: list[bytes], directions: tuple[str, 
     """A unit's entries from its routed records (:func:`make_route_lookup`): one
     :class:`~spark_align.engine.tables.DirectionTable` per direction over the unit's sorted ``keys``.
     RuntimeError if a bucket's entries are missing, repeated or of the wrong length."""
-    got: dict[int, np.ndarray] = {}
+    got: dict[tuple[int, int], bytes] = {}
     for data in records:
-        head = np.frombuffer(data, np.int64, _RECORD_HEAD)
-        if int(head[0]) in got:
-            raise RuntimeError(f"unit {unit}: the entries of table bucket {int(head[0])} arrived twice")
-        got[int(head[0])] = head
+        p, d, _n = (int(x) for x in np.frombuffer(data, np.int64, _RECORD_HEAD))
+        if (p, d) in got:
+            raise RuntimeError(f"unit {unit}: the {DIRS[d]} entries of table bucket {p} arrived twice")
+        got[p, d] = data
     out = {}
     for direction in directions:
         d = DIRS.index(direction)
@@ -281,16 +295,17 @@ def unit_entries(keys: np.ndarray, records: list[bytes], directions: tuple[str, 
         order = np.argsort(bucket, kind="stable")
         bounds = np.concatenate([[0], np.cumsum(np.bincount(bucket, minlength=n_buckets))])
         probs = np.empty(len(keys), np.float64)
-        for data in records:
-            head = np.frombuffer(data, np.int64, _RECORD_HEAD)
-            p = int(head[0])
-            start = 8 * (_RECORD_HEAD + int(head[1:1 + d].sum()))
-            segment = np.frombuffer(data, np.float64, int(head[1 + d]), start)
+        missing = []
+        for p in np.flatnonzero(np.diff(bounds)).tolist():
+            data = got.get((p, d))
+            if data is None:
+                missing.append(p)
+                continue
+            segment = np.frombuffer(data, np.float64, offset=8 * _RECORD_HEAD)
             if len(segment) != bounds[p + 1] - bounds[p]:
                 raise RuntimeError(f"unit {unit}: {len(segment)} {direction} entries of table bucket {p} "
                                    f"for {bounds[p + 1] - bounds[p]} keys")
             probs[order[bounds[p]:bounds[p + 1]]] = segment
-        missing = [int(p) for p in np.flatnonzero(np.diff(bounds)) if p not in got]
         if missing:
             raise RuntimeError(f"unit {unit}: no {direction} entries arrived from table buckets {missing[:5]}")
         out[direction] = DirectionTable(keys, probs)

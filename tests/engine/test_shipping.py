@@ -60,10 +60,14 @@ def _routed(tmp_path, unit_keys: dict[int, np.ndarray], entries: dict[int, tuple
     return routed
 
 
-def test_routed_entries_give_what_the_broadcast_lookup_gives(tmp_path):
+@pytest.mark.parametrize("batch_rows", [7, None], ids=["routes read 7 rows at a time", "routes read whole"])
+def test_routed_entries_give_what_the_broadcast_lookup_gives(tmp_path, monkeypatch, batch_rows):
     """A unit's entries, routed to it from the table's buckets (whatever order the buckets' records
-    arrive in), find a block's dictionary as the whole table does: the same probabilities, bit for bit,
-    and the floor where the table has no entry. Missing, repeated or cut records are refused."""
+    arrive in, and however the lookups' reads of the routes cut a unit's keys), find a block's
+    dictionary as the whole table does: the same probabilities, bit for bit, and the floor where the
+    table has no entry. Missing, repeated or cut records are refused."""
+    if batch_rows is not None:
+        monkeypatch.setattr(shipping, "ROUTE_BATCH_ROWS", batch_rows)
     rng = np.random.default_rng(3)
     unit_keys = {u: np.unique(rng.integers(0, 2 ** 40, 300 + 50 * u)) for u in range(3)}
     whole, entries = {}, {}
