@@ -41,7 +41,8 @@ blocks, the records waiting for its later units (Spark's sort spills them to
 disk beyond ``spark.python.worker.memory``), and the task's folded counts, which
 it sends on whenever they may hold ``TASK_KEYS`` distinct keys
 (``spark.spark_align.joinTaskKeys``). A lookup task holds one bucket of the
-table and of the routes. Nothing table-sized anywhere, the driver included.
+table and reads its routes a batch at a time. Nothing table-sized anywhere, the
+driver included.
 The price is two shuffles every iteration (8 bytes per unit key and direction
 to the E-step, then the counts), which the broadcast path avoids: it ships the
 whole table instead.
