@@ -105,6 +105,12 @@ def table_entries(spark, table_path: str) -> int:
 
 
 ROUTES = ("encoded", "routes")  # encoded/routes/<buckets>/part-PPPPP.parquet
+# Routes files: keys delta-coded (ascending within each unit); directions and units dictionary-coded
+# (their long runs become run lengths).
+ROUTES_WRITE = {"compression": "lz4_raw", "use_dictionary": ["dir", "unit"],
+                "column_encoding": {"key": "DELTA_BINARY_PACKED"}}
+ROUTES_SCHEMA = pa.schema([("dir", pa.int8()), ("unit", pa.int32()), ("key", pa.int64())])
+ROUTE_BATCH_ROWS = 1 << 20  # routes rows written at a time (a row group), and read at a time by a lookup task
 
 
 def routes_commit(n_buckets: int) -> str:
@@ -140,7 +146,8 @@ def ensure_routes(spark, store, units: list[tuple[str, int]], n_buckets: int) ->
 
     File ``part-PPPPP.parquet`` holds, per direction, every unit key whose entry that direction keeps
     in bucket ``P``, as rows (dir, unit, key) sorted by (dir, unit, key). Written once per run and
-    number of buckets, by one Spark job (the unit keys shuffled by bucket), and committed by
+    number of buckets, by one Spark job (the unit keys shuffled by bucket and sorted, so that a writer
+    holds :data:`ROUTE_BATCH_ROWS` rows at a time), and committed by
     ``routes_commit(n_buckets)`` naming the units they number (other units: written again)."""
     from spark_align.engine.mstep import part_name
     from spark_align.store import fsspec_url
@@ -159,34 +166,29 @@ def ensure_routes(spark, store, units: list[tuple[str, int]], n_buckets: int) ->
 
         fs, _root = fsspec.core.url_to_fs(blocks_url)
         for unit, (path, row_group) in numbered:
-            yield from unit_routes(unit, unit_dictionary(fs, path, row_group), n_buckets)
+            for p, (d, u, data) in unit_routes(unit, unit_dictionary(fs, path, row_group), n_buckets):
+                yield (p, d, u), data
 
     def write(p, records):
         import fsspec
-        import pyarrow.parquet as pq
 
         fs, root = fsspec.core.url_to_fs(url)
         target = posixpath.join(root, part_name(p))
         tmp = f"{target}.tmp-{time.time_ns()}"
         fs.makedirs(root, exist_ok=True)
         with fs.open(tmp, "wb") as fh:
-            pq.write_table(routes_table(piece for _p, piece in records), fh, **ROUTES_WRITE)
+            write_routes(fh, ((d, u, data) for (_p, d, u), data in records))
         fs.mv(tmp, target)
         yield p
 
     numbered = list(enumerate(units))
-    written = (sc.parallelize(numbered, max(1, min(len(numbered), 4 * sc.defaultParallelism)))
-               .mapPartitions(pieces).partitionBy(n_buckets, lambda p: p).mapPartitionsWithIndex(write).collect())
+    written = (sc.parallelize(numbered, max(1, min(len(numbered), 4 * sc.defaultParallelism))).mapPartitions(pieces)
+               .repartitionAndSortWithinPartitions(n_buckets, lambda key: key[0])
+               .mapPartitionsWithIndex(write).collect())
     if sorted(written) != list(range(n_buckets)):
         raise RuntimeError(f"routes: {n_buckets - len(set(written))} of {n_buckets} bucket files were not written")
     store.write_json(routes_commit(n_buckets), {"units": listed, "buckets": n_buckets})
     return url
-
-
-# Routes files: keys delta-coded (ascending within each unit); directions and units dictionary-coded
-# (their long runs become run lengths).
-ROUTES_WRITE = {"compression": "lz4_raw", "use_dictionary": ["dir", "unit"],
-                "column_encoding": {"key": "DELTA_BINARY_PACKED"}, "row_group_size": 1 << 20}
 
 
 def unit_routes(unit: int, keys: np.ndarray, n_buckets: int):
@@ -200,15 +202,32 @@ def unit_routes(unit: int, keys: np.ndarray, n_buckets: int):
             yield int(p), (d, unit, keys[order[bounds[p]:bounds[p + 1]]].tobytes())
 
 
+def write_routes(fh, pieces) -> None:
+    """One bucket's routes file, written to ``fh`` from its pieces (direction index, unit, keys as bytes)
+    sorted by (direction, unit), :data:`ROUTE_BATCH_ROWS` rows at a time (a row group each)."""
+    import pyarrow.parquet as pq
+
+    with pq.ParquetWriter(fh, ROUTES_SCHEMA, **ROUTES_WRITE) as writer:
+        chunk, rows = [], 0
+        for piece in pieces:
+            chunk.append(piece)
+            rows += len(piece[2]) // 8
+            if rows >= ROUTE_BATCH_ROWS:
+                writer.write_table(routes_table(chunk))
+                chunk, rows = [], 0
+        if chunk:
+            writer.write_table(routes_table(chunk))
+
+
 def routes_table(pieces) -> pa.Table:
     """One bucket's routes file, (dir, unit, key) sorted by (dir, unit, key), from its pieces."""
     parts = sorted(pieces)
     keys = [np.frombuffer(data, np.int64) for _d, _u, data in parts]
     lengths = [len(k) for k in keys]
-    return pa.table({
-        "dir": pa.array(np.repeat([d for d, _u, _k in parts], lengths).astype(np.int8)),
-        "unit": pa.array(np.repeat([u for _d, u, _k in parts], lengths).astype(np.int32)),
-        "key": pa.array(np.concatenate(keys) if keys else np.zeros(0, np.int64))})
+    return pa.Table.from_arrays([
+        pa.array(np.repeat([d for d, _u, _k in parts], lengths).astype(np.int8)),
+        pa.array(np.repeat([u for _d, u, _k in parts], lengths).astype(np.int32)),
+        pa.array(np.concatenate(keys) if keys else np.zeros(0, np.int64))], schema=ROUTES_SCHEMA)
 
 
 def bucket_entries(part) -> dict[int, tuple[np.ndarray, np.ndarray]]:
@@ -226,7 +245,6 @@ def bucket_entries(part) -> dict[int, tuple[np.ndarray, np.ndarray]]:
 
 
 _RECORD_HEAD = 3  # int64s before a record's probabilities: its bucket, its direction, their number
-ROUTE_BATCH_ROWS = 1 << 20  # routes rows a lookup task reads at a time (and rows per routes row group)
 
 
 def make_route_lookup(routes_url: str, directions: tuple[str, ...]):

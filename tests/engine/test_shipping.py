@@ -47,7 +47,8 @@ def _routed(tmp_path, unit_keys: dict[int, np.ndarray], entries: dict[int, tuple
     root = tmp_path / "routes"
     root.mkdir(parents=True, exist_ok=True)
     for p in range(n_buckets):
-        pq.write_table(shipping.routes_table(pieces.get(p, [])), root / part_name(p), **shipping.ROUTES_WRITE)
+        with open(root / part_name(p), "wb") as fh:
+            shipping.write_routes(fh, sorted(pieces.get(p, [])))
     lookup = shipping.make_route_lookup(str(root), directions)
     routed: dict[int, list[bytes]] = {}
     for p in range(n_buckets):
@@ -63,7 +64,7 @@ def _routed(tmp_path, unit_keys: dict[int, np.ndarray], entries: dict[int, tuple
 @pytest.mark.parametrize("batch_rows", [7, None], ids=["routes read 7 rows at a time", "routes read whole"])
 def test_routed_entries_give_what_the_broadcast_lookup_gives(tmp_path, monkeypatch, batch_rows):
     """A unit's entries, routed to it from the table's buckets (whatever order the buckets' records
-    arrive in, and however the lookups' reads of the routes cut a unit's keys), find a block's
+    arrive in, and however the routes' writes and the lookups' reads cut a unit's keys), find a block's
     dictionary as the whole table does: the same probabilities, bit for bit, and the floor where the
     table has no entry. Missing, repeated or cut records are refused."""
     if batch_rows is not None:
@@ -79,6 +80,8 @@ def test_routed_entries_give_what_the_broadcast_lookup_gives(tmp_path, monkeypat
         entries[d] = (table_keys, table_probs)
     routed = _routed(tmp_path, unit_keys, entries, n_buckets=5)
     assert sorted(routed) == [0, 1, 2]
+    if batch_rows is not None:  # written 7 rows at a time too
+        assert pq.ParquetFile(tmp_path / "routes" / "part-00000.parquet").metadata.num_row_groups > 1
     for unit, keys in unit_keys.items():
         records = routed[unit][::-1] if unit % 2 else routed[unit]
         got = shipping.unit_entries(keys, records, ("forward", "reverse"), 5, unit)
@@ -87,6 +90,10 @@ def test_routed_entries_give_what_the_broadcast_lookup_gives(tmp_path, monkeypat
             want = whole[direction].local(block_keys)
             assert np.array_equal(got[direction].local(block_keys), want)
             assert 0 < np.sum(want == tables.MIN_PROB) < len(block_keys)
+    # a bucket no unit key falls in: an empty routes file, no records
+    with open(tmp_path / "routes" / "part-00009.parquet", "wb") as fh:
+        shipping.write_routes(fh, [])
+    assert list(shipping.make_route_lookup(str(tmp_path / "routes"), ("forward", "reverse"))(9, {})) == []
     records = routed[1]
     with pytest.raises(RuntimeError, match="no forward entries arrived from table buckets"):
         shipping.unit_entries(unit_keys[1], records[1:], ("forward",), 5, 1)
