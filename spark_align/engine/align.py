@@ -45,7 +45,6 @@ from spark_align.config import CorpusConfig, RunConfig
 from spark_align.engine import ingest, output, tables
 from spark_align.engine import shipping as shipping_mod
 from spark_align.engine.em import n_reducers
-from spark_align.engine.mstep import block_units
 from spark_align.errors import CheckpointError, ConfigError, RunDirError
 from spark_align.kernels import ragged
 from spark_align.store import FORMAT_VERSION, Checkpoint, RunStore
@@ -255,11 +254,8 @@ def align_corpus(spark, run_dir: str, corpus: CorpusConfig, out_dir: str, *, che
                                       threshold=cfg.posterior_threshold, symmetrization=cfg.symmetrization)
         decoded = None
         if routed:
-            n_units = len(block_units(out))
-            decoded = shipping_mod.decode_routed(
-                spark, out, table_path, decoder, n_buckets=n_reducers(spark),
-                n_tasks=max(1, min(n_units, output.UNITS_PER_CORE * spark.sparkContext.defaultParallelism)),
-                extra=unknown_entries(src_v, tgt_v))
+            decoded = shipping_mod.decode_routed(spark, out, table_path, decoder, n_buckets=n_reducers(spark),
+                                                 extra=unknown_entries(src_v, tgt_v))
         manifest = output.write_output(
             spark, out, decoder, checkpoint=ckpt.name, directions=cfg.direction_list, decoded=decoded,
             extra={"kind": "align", "run": run.store.url, "stage_index": ckpt.stage_index,

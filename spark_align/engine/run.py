@@ -185,10 +185,7 @@ def train(spark, cfg: RunConfig, run_dir: str, *, resume: bool = False, resume_f
                                       threshold=cfg.posterior_threshold, symmetrization=cfg.symmetrization)
         decoded = None
         if shipping.choose_shipping(cfg.shipping, n_entries, cfg.table_budget_mb) == "join":
-            n_units = len(trainer.block_units())
-            decoded = shipping.decode_routed(
-                spark, store, state.table_path, decoder, n_buckets=trainer.n_reducers(),
-                n_tasks=max(1, min(n_units, output.UNITS_PER_CORE * spark.sparkContext.defaultParallelism)))
+            decoded = shipping.decode_routed(spark, store, state.table_path, decoder, n_buckets=trainer.n_reducers())
         manifest = output.write_output(
             spark, store, decoder, checkpoint=f"{last.model}:{state.iteration}",
             directions=cfg.direction_list, decoded=decoded,

@@ -488,7 +488,7 @@ def join_payloads(spark, store, units: list[tuple[str, int]], table_path: str, m
 DECODED = "decoded"  # the routed output pass's decoded rows, removed once the output is written
 
 
-def decode_routed(spark, store, table_path: str, decoder, *, n_tasks: int, n_buckets: int,
+def decode_routed(spark, store, table_path: str, decoder, *, n_buckets: int,
                   extra: dict[str, tuple[np.ndarray, float]] | None = None):
     """The output pass's decoded rows (``engine.output.PACKED_SCHEMA``) with per-unit shipping: each
     decoding task gets its units' entries through :func:`routed_entries` (no Python worker reads the
@@ -497,9 +497,11 @@ def decode_routed(spark, store, table_path: str, decoder, *, n_tasks: int, n_buc
     -> (keys, probability) of entries the table lacks, set in every unit that has those keys (the
     unknown words' entries of ``engine.align``)."""
     from spark_align.engine.mstep import block_units
+    from spark_align.engine.output import UNITS_PER_CORE
     from spark_align.store import fsspec_url
 
     units = block_units(store)
+    n_tasks = max(1, min(len(units), UNITS_PER_CORE * spark.sparkContext.defaultParallelism))
     blocks_url = fsspec_url(store.spark_path("encoded", "blocks"))
     out_url = fsspec_url(store.spark_path(DECODED))
     directions = decoder.directions
