@@ -132,13 +132,17 @@ def key_buckets(keys: np.ndarray, d: int, n_buckets: int) -> np.ndarray:
     return bucket.astype(np.int16) if n_buckets <= 2 ** 15 else bucket
 
 
+def distinct_keys(dictionaries: list[np.ndarray]) -> np.ndarray:
+    """The distinct keys of a unit's block dictionaries, ascending: the keys its entries are found in."""
+    return ragged.distinct(np.concatenate(dictionaries)) if dictionaries else np.zeros(0, np.int64)
+
+
 def unit_dictionary(fs, path: str, row_group: int) -> np.ndarray:
-    """The distinct dictionary keys of one unit's blocks, ascending (only ``dict_keys`` is read)."""
+    """:func:`distinct_keys` of one unit's blocks, read from Parquet (only ``dict_keys``)."""
     from spark_align.engine.mstep import read_unit
 
-    keys = [block_array(b.column(0), k, "dict_keys")
-            for b in read_unit(fs, path, row_group, columns=["dict_keys"]) for k in range(b.num_rows)]
-    return ragged.distinct(np.concatenate(keys)) if keys else np.zeros(0, np.int64)
+    return distinct_keys([block_array(b.column(0), k, "dict_keys")
+                          for b in read_unit(fs, path, row_group, columns=["dict_keys"]) for k in range(b.num_rows)])
 
 
 def ensure_routes(spark, store, units: list[tuple[str, int]], n_buckets: int) -> str:
@@ -391,8 +395,7 @@ def make_join_estep(model, directions: tuple[str, ...], dense: dict[str, dict], 
             blocks = read_blocks(fs, *units[unit], with_keys=True)
             seconds["read"] += time.perf_counter() - read_started
             looked_up = time.perf_counter()
-            keys = (ragged.distinct(np.concatenate([block.dict_keys for block in blocks])) if blocks
-                    else np.zeros(0, np.int64))
+            keys = distinct_keys([block.dict_keys for block in blocks])
             entries = unit_entries(keys, records, directions, n_buckets, unit)
             seconds["lookup"] += time.perf_counter() - looked_up
             task, pending = mstep.TaskCounts(entries), 0
@@ -524,8 +527,8 @@ def decode_routed(spark, store, table_path: str, decoder, *, n_buckets: int,
         out_fs.makedirs(out_root, exist_ok=True)
         for unit, records in units_with_records(task_index, routed, n_tasks, len(units)):
             batches = list(read_unit(fs, *units[unit]))
-            keys = [block.dict_keys for batch in batches for _id, _rows, block in blocks_from_batch(batch)]
-            keys = ragged.distinct(np.concatenate(keys)) if keys else np.zeros(0, np.int64)
+            keys = distinct_keys([block.dict_keys for batch in batches
+                                  for _id, _rows, block in blocks_from_batch(batch)])
             entries = unit_entries(keys, records, directions, n_buckets, unit)
             for direction, (extra_keys, prob) in (extra or {}).items():
                 if direction in entries:
