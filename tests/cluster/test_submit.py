@@ -172,8 +172,10 @@ def runs(request, workspace, standalone, bare_py, package_zip):
     and most of each run is waiting on JVM start-up and scheduling)."""
     started = {}
     try:
+        # per-unit shipping here (routes, lookups, routed decoding in executors of their own); the
+        # reference and the standalone run broadcast: the results must still be equal, bit for bit
         started["local-cluster"] = start_submit(workspace, bare_py, package_zip, "local-cluster[2,1,1024]",
-                                                "local-cluster")
+                                                "local-cluster", "--shipping", "join")
         standalone["ready"]()
         started["standalone"] = start_submit(workspace, bare_py, package_zip, standalone["master"], "standalone")
         reference = request.getfixturevalue("reference")
@@ -252,6 +254,9 @@ def test_local_cluster_run_equals_local_mode(workspace, runs):
     assert code == 0, log[-3000:]
     assert_same_results(run_dir, runs["reference"])
     assert json.loads(Path(run_dir, "run.json").read_text())["spark"]["master"] == "local-cluster[2,1,1024]"
+    hmm = json.loads(Path(run_dir, checkpoint_dirs(run_dir)[1], "manifest.json").read_text())
+    assert hmm["metrics"]["forward"]["shipping"] == "join"  # the first iteration's uniform start is a constant
+    assert not Path(run_dir, "decoded").exists()
 
 
 def test_configuration_error_under_spark_submit_is_one_line_and_exit_2(workspace, bare_py, package_zip):
