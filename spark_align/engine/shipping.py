@@ -132,6 +132,14 @@ def key_buckets(keys: np.ndarray, d: int, n_buckets: int) -> np.ndarray:
     return bucket.astype(np.int16) if n_buckets <= 2 ** 15 else bucket
 
 
+def bucket_order(keys: np.ndarray, d: int, n_buckets: int) -> tuple[np.ndarray, np.ndarray]:
+    """(order, bounds): ``keys[order[bounds[p]:bounds[p + 1]]]`` are the keys of bucket ``p`` in
+    direction ``d`` (:func:`key_buckets`), in their order in ``keys``."""
+    bucket = key_buckets(keys, d, n_buckets)
+    order = np.argsort(bucket, kind="stable")
+    return order, np.concatenate([[0], np.cumsum(np.bincount(bucket, minlength=n_buckets))])
+
+
 def distinct_keys(dictionaries: list[np.ndarray]) -> np.ndarray:
     """The distinct keys of a unit's block dictionaries, ascending: the keys its entries are found in."""
     return ragged.distinct(np.concatenate(dictionaries)) if dictionaries else np.zeros(0, np.int64)
@@ -199,9 +207,7 @@ def unit_routes(unit: int, keys: np.ndarray, n_buckets: int):
     """(bucket, (direction index, unit, keys as bytes)) pieces of the routes: for each direction, the
     unit's ascending ``keys`` whose entry that direction keeps in each bucket."""
     for d in range(len(DIRS)):
-        bucket = key_buckets(keys, d, n_buckets)
-        order = np.argsort(bucket, kind="stable")  # keys ascending within each bucket
-        bounds = np.concatenate([[0], np.cumsum(np.bincount(bucket, minlength=n_buckets))])
+        order, bounds = bucket_order(keys, d, n_buckets)  # keys ascending within each bucket
         for p in np.flatnonzero(np.diff(bounds)):
             yield int(p), (d, unit, keys[order[bounds[p]:bounds[p + 1]]].tobytes())
 
@@ -314,9 +320,7 @@ def unit_entries(keys: np.ndarray, records: list[bytes], directions: tuple[str, 
     out = {}
     for direction in directions:
         d = DIRS.index(direction)
-        bucket = key_buckets(keys, d, n_buckets)
-        order = np.argsort(bucket, kind="stable")
-        bounds = np.concatenate([[0], np.cumsum(np.bincount(bucket, minlength=n_buckets))])
+        order, bounds = bucket_order(keys, d, n_buckets)
         probs = np.empty(len(keys), np.float64)
         missing = []
         for p in np.flatnonzero(np.diff(bounds)).tolist():
