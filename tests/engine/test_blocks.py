@@ -45,3 +45,44 @@ def test_blocks_round_trip_through_parquet_in_both_formats(tmp_path):
                                       np.concatenate([np.arange(len(b.dict_keys)) for b in blocks]))
     # The binary form is the smaller and needs no list levels.
     assert (tmp_path / "new.parquet").stat().st_size < (tmp_path / "old.parquet").stat().st_size
+
+
+def test_row_groups_read_the_same_memory_mapped_and_streamed(tmp_path):
+    # mstep.read_unit memory-maps local files and streams any other store's: same blocks either way,
+    # whether the file is compressed (what earlier versions wrote) or not (what ingestion writes now).
+    import fsspec
+
+    from spark_align.engine import estep, mstep
+
+    rng = np.random.default_rng(5)
+    blocks = [_block(rng) for _ in range(5)]
+    rows = [np.arange(40, dtype=np.int64) + 40 * i for i in range(5)]
+    table = pa.Table.from_batches([ingest.block_batch(i, r, b) for i, (r, b) in enumerate(zip(rows, blocks))])
+    local = fsspec.filesystem("file")
+    memory = fsspec.filesystem("memory")
+    for compression in ("none", "lz4_raw"):
+        path = tmp_path / f"blocks-{compression}.parquet"
+        pq.write_table(table, path, row_group_size=2, compression=compression)
+        remote = f"/read-unit-test/{path.name}"
+        memory.pipe(remote, path.read_bytes())
+        try:
+            assert pq.ParquetFile(path).metadata.num_row_groups == 3
+            for with_keys in (True, False):
+                got = {name: [b for rg in range(3) for b in estep.read_blocks(fs, p, rg, with_keys=with_keys)]
+                       for name, fs, p in (("mapped", local, str(path)), ("streamed", memory, remote))}
+                assert len(got["mapped"]) == len(got["streamed"]) == 5
+                for a, b, want in zip(got["mapped"], got["streamed"], blocks):
+                    for field in ("src_offsets", "src_ids", "tgt_offsets", "tgt_ids", "grid_offsets", "grid"):
+                        np.testing.assert_array_equal(getattr(a, field), getattr(want, field))
+                        np.testing.assert_array_equal(getattr(b, field), getattr(want, field))
+                    if with_keys:
+                        np.testing.assert_array_equal(a.dict_keys, want.dict_keys)
+                        np.testing.assert_array_equal(b.dict_keys, want.dict_keys)
+                    else:
+                        assert a.dict_keys is None and b.dict_keys is None
+            # a column subset through read_unit itself, on both branches
+            for fs, p in ((local, str(path)), (memory, remote)):
+                ids = [batch.column(0).to_pylist() for batch in mstep.read_unit(fs, p, 2, columns=["block_id"])]
+                assert ids == [[4]]
+        finally:
+            memory.rm("/read-unit-test", recursive=True)
