@@ -29,8 +29,10 @@ core time:
   accumulators), ``table load`` (each Python worker reading the table), ``block reads``,
   ``output records`` (grouping and compressing a task's counts for the shuffle), ``other E-step``
   (the rest of the E-step tasks' wall time: block views, the reverse grid, Python),
-  ``reducers`` (summing, normalising and writing the table) and ``rest`` (Spark scheduling and
-  shuffle, the driver, and idle cores; ``driver``: the part of it between the iteration's Spark jobs,
+  ``reducers`` (summing, normalising and writing the table), ``join lookup tasks`` (the join path's
+  tasks that read a table bucket and its routes and find each unit's entries; not handing them to
+  Spark) and ``rest`` (Spark scheduling and shuffle, the join path's sort of routed entries, the driver,
+  and idle cores; ``driver``: the part of it between the iteration's Spark jobs,
   when the driver plans and commits and the cores wait);
 * ``outside_compute``: the same with the lookup and the accumulation counted as E-step
   computation: ``1 - (kernel + lookup + accumulation seconds) / (iteration seconds x cores)``;
@@ -128,6 +130,7 @@ def _child_train(args) -> None:
                      "estep_task_seconds": m["metrics"][dirs[0]].get("estep_task_seconds", 0.0),
                      **{f"{part}_seconds": m["metrics"][dirs[0]].get(f"{part}_seconds", 0.0) for part in PARTS},
                      "reduce_task_seconds": m["metrics"][dirs[0]].get("reduce_task_seconds", 0.0),
+                     "route_lookup_seconds": m["metrics"][dirs[0]].get("route_lookup_seconds", 0.0),
                      "job_seconds": m["metrics"][dirs[0]].get("job_seconds", m["seconds"]),
                      **{key: sum(m["metrics"][d].get(key, 0.0) for d in dirs)
                         for key in ("lookup_keys_searched", "lookup_keys", "lookup_keys_trusted")},
@@ -181,6 +184,7 @@ def run_config(work: Path, pairs: int, *, vocab: int, shipping: str, block_size:
         links = sum(r["links"] for r in later) / len(later)
         task = sum(r["estep_task_seconds"] for r in later) / len(later)
         reduce = sum(r["reduce_task_seconds"] for r in later) / len(later)
+        route = sum(r["route_lookup_seconds"] for r in later) / len(later)
         parts = {part: sum(r[f"{part}_seconds"] for r in later) / len(later) for part in PARTS}
         searched = sum(r.get("lookup_keys_searched", 0.0) for r in later)
         looked_up = sum(r.get("lookup_keys", 0.0) for r in later)
@@ -198,7 +202,8 @@ def run_config(work: Path, pairs: int, *, vocab: int, shipping: str, block_size:
                       # where the core time went (shares of cores x iteration seconds)
                       **{f"{part}_share": v / core_s for part, v in parts.items()},
                       estep_other=(task - kernel - sum(parts.values())) / core_s if task else float("nan"),
-                      reduce_share=reduce / core_s, rest_share=1.0 - max(task, kernel) / core_s - reduce / core_s,
+                      reduce_share=reduce / core_s, route_lookup_share=route / core_s,
+                      rest_share=1.0 - max(task, kernel) / core_s - reduce / core_s - route / core_s,
                       driver_share=between / core_s)
     subprocess.run(["rm", "-rf", str(run), memdir])
     return result
@@ -215,7 +220,8 @@ def fmt(r: dict) -> str:
             f"  (lookup {pct('lookup_share')} with {pct('searched_share')} of keys searched and {pct('trusted_share')} at"
             f" stored positions, accumulation {pct('accumulate_share')}, table load"
             f" {pct('table_load_share')}, block reads {pct('block_read_share')}, output records {pct('payload_share')},"
-            f" other E-step {pct('estep_other')}, reducers {pct('reduce_share')}, rest {pct('rest_share')}, of which"
+            f" other E-step {pct('estep_other')}, reducers {pct('reduce_share')}, join lookup tasks"
+            f" {pct('route_lookup_share')}, rest {pct('rest_share')}, of which"
             f" the driver between jobs {pct('driver_share')})\n"
             f"    task RSS {r['task_rss_mb']:6.0f} MB (noted by E-step tasks {r.get('estep_rss_mb', float('nan')):.0f}, "
             f"by reducers {r.get('reduce_rss_mb', float('nan')):.0f}, by the join's lookups "

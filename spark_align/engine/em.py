@@ -151,9 +151,12 @@ class Trainer:
         if path == "join":
             flush_keys = whole_number_setting(shipping.TASK_KEYS_CONF, self.spark.conf.get(
                 shipping.TASK_KEYS_CONF, str(shipping.TASK_KEYS)))
+            route_seconds = sc.accumulator(0.0)
             pairs = shipping.join_payloads(self.spark, self.store, units, state.table_path, model, self.directions,
-                                           state.dense, n_tasks=n_tasks, n_buckets=n_parts, flush_keys=flush_keys)
+                                           state.dense, n_tasks=n_tasks, n_buckets=n_parts, flush_keys=flush_keys,
+                                           lookup_seconds=route_seconds)
         else:
+            route_seconds = None
             source = tables_mod.table_source(state.table_path, self.directions, src_v, tgt_v)
             estep = make_estep(model, self.directions, source, state.dense,
                                blocks_url=fsspec_url(self.store.spark_path("encoded", "blocks")), n_buckets=n_parts,
@@ -194,6 +197,8 @@ class Trainer:
                           "lookup_keys": sums[d]["scalar"].get(10, 0.0),
                           "lookup_keys_trusted": sums[d]["scalar"].get(11, 0.0),
                           "reduce_task_seconds": float(sum(s["seconds"] for s in summaries)),
+                          # the join path's lookup tasks (shipping.routed_entries); 0 on the broadcast path
+                          "route_lookup_seconds": float(route_seconds.value) if route_seconds is not None else 0.0,
                           "job_seconds": job_seconds, "reducers": n_parts,
                           "shipping": path, "table_entries": n_entries, "new_table_entries": sums[d]["entries"]}
             if sums[d]["pruned"] is not None:

@@ -432,14 +432,17 @@ def make_join_estep(model, directions: tuple[str, ...], dense: dict[str, dict], 
 
 
 def routed_entries(spark, store, units: list[tuple[str, int]], table_path: str, directions: tuple[str, ...], *,
-                   n_tasks: int, n_buckets: int):
+                   n_tasks: int, n_buckets: int, seconds=None):
     """Every unit's entries of the table at ``table_path`` as an RDD of (unit, record) pairs
     (:func:`make_route_lookup`), in ``n_tasks`` partitions (:func:`task_of`) sorted by unit: one lookup
     task per table bucket routes them.
 
     A table the reducers wrote in ``n_buckets`` buckets is read file by file, one per lookup task;
     any other (the seeded random initial table, or one written with another number of reducers) is
-    first sent to the lookup tasks by bucket, through a shuffle."""
+    first sent to the lookup tasks by bucket, through a shuffle. ``seconds``: a Spark accumulator that
+    the lookup tasks add the seconds of their own work to (reading their table bucket and routes,
+    finding the entries; not handing the records to Spark), for the iteration's metrics (a retried
+    task adds its seconds again)."""
     from spark_align.engine.tables import TableLayout
     from spark_align.store import fsspec_url
 
@@ -457,10 +460,23 @@ def routed_entries(spark, store, units: list[tuple[str, int]], table_path: str, 
         with fs.open(posixpath.join(root, name), "rb") as fh:
             return pq.read_table(fh, columns=["dir", "src", "tgt", "prob"])
 
+    def timed(make):
+        # the seconds spent making the records (inside next()), not those the consumer spends on them
+        items, spent = make(), 0.0
+        while True:
+            started = time.perf_counter()
+            item = next(items, None)
+            spent += time.perf_counter() - started
+            if item is None:
+                break
+            yield item
+        if seconds is not None:
+            seconds.add(spent)
+
     if layout.bucketed and len(layout.names) == n_buckets:
         names = layout.names
         looked = sc.parallelize(range(n_buckets), n_buckets).flatMap(
-            lambda p: lookup_bucket(p, bucket_entries(read_part(names[p]))))
+            lambda p: timed(lambda: lookup_bucket(p, bucket_entries(read_part(names[p])))))
     else:
         def by_bucket(name: str):
             part = read_part(name)
@@ -472,7 +488,7 @@ def routed_entries(spark, store, units: list[tuple[str, int]], table_path: str, 
         def merged(p, pieces):
             pieces = [piece for _p, piece in pieces]
             if pieces:
-                yield from lookup_bucket(p, bucket_entries(pa.concat_tables(pieces)))
+                yield from timed(lambda: lookup_bucket(p, bucket_entries(pa.concat_tables(pieces))))
 
         looked = (sc.parallelize(layout.names, max(1, min(len(layout.names), 4 * sc.defaultParallelism)))
                   .flatMap(by_bucket).partitionBy(n_buckets, lambda p: p).mapPartitionsWithIndex(merged))
@@ -481,15 +497,17 @@ def routed_entries(spark, store, units: list[tuple[str, int]], table_path: str, 
 
 
 def join_payloads(spark, store, units: list[tuple[str, int]], table_path: str, model, directions: tuple[str, ...],
-                  dense: dict[str, dict], *, n_tasks: int, n_buckets: int, flush_keys: int = TASK_KEYS):
+                  dense: dict[str, dict], *, n_tasks: int, n_buckets: int, flush_keys: int = TASK_KEYS,
+                  lookup_seconds=None):
     """The (bucket, payload) records of one iteration with per-unit parameter shipping, as an RDD (what
-    ``engine.mstep.reduce_and_write`` takes): :func:`routed_entries` to the E-step tasks."""
+    ``engine.mstep.reduce_and_write`` takes): :func:`routed_entries` to the E-step tasks
+    (``lookup_seconds``: its ``seconds``)."""
     from spark_align.store import fsspec_url
 
     estep = make_join_estep(model, directions, dense, blocks_url=fsspec_url(store.spark_path("encoded", "blocks")),
                             units=units, n_tasks=n_tasks, n_buckets=n_buckets, flush_keys=flush_keys)
-    return routed_entries(spark, store, units, table_path, directions, n_tasks=n_tasks,
-                          n_buckets=n_buckets).mapPartitionsWithIndex(estep)
+    return routed_entries(spark, store, units, table_path, directions, n_tasks=n_tasks, n_buckets=n_buckets,
+                          seconds=lookup_seconds).mapPartitionsWithIndex(estep)
 
 
 DECODED = "decoded"  # the routed output pass's decoded rows, removed once the output is written

@@ -286,6 +286,9 @@ def test_join_and_broadcast_shipping_give_bit_identical_tables_and_pruning(spark
     assert manifest(joined, "00-ibm1", 2)["metrics"]["forward"]["shipping"] == "join"
     assert manifest(joined, "00-ibm1", 1)["metrics"]["forward"]["pruned"]["removed"] == 0
     assert manifest(base_broadcast, "00-ibm1", 2)["metrics"]["forward"]["shipping"] == "broadcast"
+    # the join path's lookup tasks report their seconds; no lookup task runs on the broadcast path
+    assert manifest(joined, "00-ibm1", 2)["metrics"]["forward"]["route_lookup_seconds"] > 0
+    assert manifest(base_broadcast, "00-ibm1", 2)["metrics"]["forward"]["route_lookup_seconds"] == 0
     for d in ("forward", "reverse"):
         assert (manifest(joined, "01-hmm", 1)["metrics"][d]["loglik"]
                 == manifest(base_broadcast, "01-hmm", 1)["metrics"][d]["loglik"])
