@@ -7,6 +7,8 @@ Layout of ``RUN_DIR`` (a local path or any URL both Spark and fsspec understand)
     vocab/source/, vocab/target/      word, id, count (Parquet)
     encoded/blocks/                   encoded blocks (Parquet) + encoded.json
     encoded/hints/                    lookup hints per row group of blocks (a checked cache, ``engine.hints``)
+    encoded/routes/, encoded/unit_index/  the join path's routes and unit indexes (``engine.shipping``,
+                                      ``engine.unit_index``: a checked cache)
     checkpoints/SS-MODEL/iter-NNNN/   lex/ (Parquet table) + manifest.json
     output/                           the output corpus (Parquet) + output.json
 

@@ -41,21 +41,32 @@ def hints_path(root: str, direction: str, blocks_file: str, row_group: int) -> s
 def read(fs, root: str, direction: str, blocks_file: str, row_group: int) -> StoredHints | None:
     """The stored hints of a row group's dictionary keys, or None if there are none usable (absent,
     unreadable or damaged). Callers check the length against the blocks they read."""
-    try:
-        with fs.open(hints_path(root, direction, blocks_file, row_group), "rb") as fh:
-            return decode_hints(fh.read())
-    except (OSError, ValueError):
-        return None
+    return read_cached(fs, hints_path(root, direction, blocks_file, row_group), decode_hints)
 
 
 def write(fs, root: str, direction: str, blocks_file: str, row_group: int, stored: StoredHints) -> None:
     """Store a row group's hints (whole file or nothing; a failure only loses the cache)."""
-    path = hints_path(root, direction, blocks_file, row_group)
+    write_cached(fs, hints_path(root, direction, blocks_file, row_group), encode_hints(stored))
+
+
+def read_cached(fs, path: str, decode):
+    """``decode`` of a cache file's bytes, or None if it is absent, unreadable or does not decode
+    (``decode`` raises ValueError)."""
+    try:
+        with fs.open(path, "rb") as fh:
+            return decode(fh.read())
+    except (OSError, ValueError):
+        return None
+
+
+def write_cached(fs, path: str, data: bytes) -> None:
+    """Write a cache file whole or not at all: under a unique temporary name, then moved into place;
+    a failure only loses the cache."""
     tmp = f"{path}.{uuid.uuid4().hex}.tmp"
     try:
         ensure_parent(fs, path)
         with fs.open(tmp, "wb") as fh:
-            fh.write(encode_hints(stored))
+            fh.write(data)
         fs.mv(tmp, path)
     except OSError:
         try:

@@ -32,7 +32,9 @@ number of reducers) first goes to the lookup tasks by bucket, through a shuffle.
 The E-step task reads a unit's blocks from Parquet itself (the blocks never
 pass through the shuffle), places the unit's records in its sorted keys
 (``MIN_PROB`` where the table has none, as the broadcast lookup gives), finds
-each block's dictionary there once for both directions and adds the counts
+each block's dictionary there once for both directions (what the unit's keys are
+and where each block's keys sit among them come from the unit's stored index after
+the first iteration, ``engine.unit_index``) and adds the counts
 into accumulators aligned with the unit's entries (as the broadcast path adds
 into the whole table's); they leave as one sorted run per unit, which the task
 merges into one sum per key before emitting them by reducer bucket. Memory per
@@ -104,6 +106,7 @@ def table_entries(spark, table_path: str) -> int:
         return spark.read.parquet(table_path).count()
 
 
+UNIT_INDEX = ("encoded", "unit_index")  # the join E-step's stored unit indexes (engine.unit_index)
 ROUTES = ("encoded", "routes")  # encoded/routes/<buckets>/part-PPPPP.parquet
 # Routes files: keys delta-coded (ascending within each unit); directions and units dictionary-coded
 # (their long runs become run lengths).
@@ -307,9 +310,11 @@ def make_route_lookup(routes_url: str, directions: tuple[str, ...]):
 
 
 def unit_entries(keys: np.ndarray, records: list[bytes], directions: tuple[str, ...], n_buckets: int,
-                 unit: int) -> dict[str, DirectionTable]:
+                 unit: int, orders: dict[str, tuple[np.ndarray, np.ndarray]] | None = None
+                 ) -> dict[str, DirectionTable]:
     """A unit's entries from its routed records (:func:`make_route_lookup`): one
-    :class:`~spark_align.engine.tables.DirectionTable` per direction over the unit's sorted ``keys``.
+    :class:`~spark_align.engine.tables.DirectionTable` per direction over the unit's sorted ``keys``
+    (``orders``: direction -> :func:`bucket_order` of ``keys``, if already known).
     RuntimeError if a bucket's entries are missing, repeated or of the wrong length."""
     got: dict[tuple[int, int], bytes] = {}
     for data in records:
@@ -320,7 +325,7 @@ def unit_entries(keys: np.ndarray, records: list[bytes], directions: tuple[str, 
     out = {}
     for direction in directions:
         d = DIRS.index(direction)
-        order, bounds = bucket_order(keys, d, n_buckets)
+        order, bounds = orders[direction] if orders is not None else bucket_order(keys, d, n_buckets)
         probs = np.empty(len(keys), np.float64)
         missing = []
         for p in np.flatnonzero(np.diff(bounds)).tolist():
@@ -355,7 +360,8 @@ def units_with_records(task_index: int, routed, n_tasks: int, n_units: int):
 
 
 def make_join_estep(model, directions: tuple[str, ...], dense: dict[str, dict], *, blocks_url: str,
-                    units: list[tuple[str, int]], n_tasks: int, n_buckets: int, flush_keys: int = TASK_KEYS):
+                    units: list[tuple[str, int]], n_tasks: int, n_buckets: int, flush_keys: int = TASK_KEYS,
+                    index_url: str | None = None):
     """The E-step of the join path: (task index, its (unit, record) pairs sorted by unit) -> (bucket,
     payload) records of its units' counts, folded (``engine.mstep``) and sent on whenever they may hold
     ``flush_keys`` distinct keys and at the end, and the timing scalars of ``engine.estep``'s module
@@ -364,19 +370,22 @@ def make_join_estep(model, directions: tuple[str, ...], dense: dict[str, dict], 
     Every unit of the task (:func:`task_of`) is run, in order, with the records that arrived for it. A
     unit's counts are added into accumulators aligned with its entries (found once per block for both
     directions, as the broadcast path adds into the whole table's) and leave them as sorted runs,
-    which the task's :class:`~spark_align.kernels.counts.CountBuffer` merges."""
+    which the task's :class:`~spark_align.kernels.counts.CountBuffer` merges. What a unit's keys are,
+    where each block's keys sit among them and their order by bucket are read from the unit's stored
+    index under ``index_url`` (``engine.unit_index``; None: none), with the blocks read without their
+    dictionary keys; without a usable one they are worked out from the blocks and stored."""
 
     def estep(task_index, routed):
         import fsspec
 
-        from spark_align.engine import mstep
-        from spark_align.engine.estep import block_results, read_blocks, timing_payloads
-        from spark_align.kernels import lookup
+        from spark_align.engine import mstep, unit_index
+        from spark_align.engine.estep import block_results, emitted_keys, read_blocks, timing_payloads
 
         _maybe_fail()
         keep_freed_memory()
         started = time.perf_counter()
         fs, _root = fsspec.core.url_to_fs(blocks_url)
+        index_fs, index_root = fsspec.core.url_to_fs(index_url) if index_url else (None, None)
         folded = counts.CountBuffer()  # the counts not sent yet
         seconds = {"lookup": 0.0, "add": 0.0, "read": 0.0, "payload": 0.0}
 
@@ -394,25 +403,44 @@ def make_join_estep(model, directions: tuple[str, ...], dense: dict[str, dict], 
             seconds["payload"] += time.perf_counter() - payload_started
             return records
 
-        def run_unit(unit: int, records: list[bytes]):
+        def unit_blocks(unit: int):
+            # (blocks, index): with a stored index that fits them, the blocks without their dictionary keys
+            path, row_group = units[unit]
             read_started = time.perf_counter()
-            blocks = read_blocks(fs, *units[unit], with_keys=True)
+            index = unit_index.read(index_fs, index_root, path, row_group) if index_fs is not None else None
+            blocks = read_blocks(fs, path, row_group, with_keys=index is None)
+            if index is not None and not index.fits([block.n_dict for block in blocks]):
+                index, blocks = None, read_blocks(fs, path, row_group, with_keys=True)
             seconds["read"] += time.perf_counter() - read_started
+            if index is None:
+                looked_up = time.perf_counter()
+                index = unit_index.build([block.dict_keys for block in blocks], n_buckets)
+                if index_fs is not None:
+                    unit_index.write(index_fs, index_root, path, row_group, index)
+                seconds["lookup"] += time.perf_counter() - looked_up
+            return blocks, index
+
+        def run_unit(unit: int, records: list[bytes]):
+            blocks, index = unit_blocks(unit)
             looked_up = time.perf_counter()
-            keys = distinct_keys([block.dict_keys for block in blocks])
-            entries = unit_entries(keys, records, directions, n_buckets, unit)
+            entries = unit_entries(index.keys, records, directions, n_buckets, unit,
+                                   orders={d: index.order(DIRS.index(d), n_buckets) for d in directions})
+            lexical = {d: emitted_keys(index.keys, d) for d in directions}
             seconds["lookup"] += time.perf_counter() - looked_up
-            task, pending = mstep.TaskCounts(entries), 0
+            task, pending, offset = mstep.TaskCounts(entries), 0, 0
             for block in blocks:
                 looked_up = time.perf_counter()
-                found = lookup.positions(keys, block.dict_keys)
-                t_locals = {d: np.where(found[1], entries[d].probs[found[0]], MIN_PROB) for d in directions}
+                pos = index.positions[offset:offset + block.n_dict]
+                offset += block.n_dict
+                found = (pos, np.ones(len(pos), bool))  # every dictionary key is one of the unit's
+                t_locals = {d: entries[d].probs[pos] for d in directions}
+                emitted = {d: lexical[d][pos] for d in directions}
                 seconds["lookup"] += time.perf_counter() - looked_up
-                for result in block_results(model, directions, block, t_locals, dense):
+                for result in block_results(model, directions, block, t_locals, dense, emitted):
                     added = time.perf_counter()
                     task.add(block.dict_keys, found, *result)
                     seconds["add"] += time.perf_counter() - added
-                pending += len(block.dict_keys) * len(directions)
+                pending += block.n_dict * len(directions)
                 if folded.max_keys + pending >= flush_keys:
                     fold(task)
                     pending = 0
@@ -505,7 +533,8 @@ def join_payloads(spark, store, units: list[tuple[str, int]], table_path: str, m
     from spark_align.store import fsspec_url
 
     estep = make_join_estep(model, directions, dense, blocks_url=fsspec_url(store.spark_path("encoded", "blocks")),
-                            units=units, n_tasks=n_tasks, n_buckets=n_buckets, flush_keys=flush_keys)
+                            units=units, n_tasks=n_tasks, n_buckets=n_buckets, flush_keys=flush_keys,
+                            index_url=fsspec_url(store.spark_path(*UNIT_INDEX)))
     return routed_entries(spark, store, units, table_path, directions, n_tasks=n_tasks, n_buckets=n_buckets,
                           seconds=lookup_seconds).mapPartitionsWithIndex(estep)
 
