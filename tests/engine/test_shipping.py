@@ -16,8 +16,8 @@ from spark_align.engine.run import train
 from spark_align.errors import ConfigError
 from spark_align.kernels import ragged
 from spark_align.store import RunStore
-from tests.engine.helpers import (TOY_SOURCE, TOY_TARGET, config, manifest, read_output, read_table, write_parquet,
-                                  write_text)
+from tests.engine.helpers import (TOY_SOURCE, TOY_TARGET, config, manifest, read_output, read_table, routed_records,
+                                  write_parquet, write_text)
 
 
 # -- the size rule (no Spark) --------------------------------------------------------------
@@ -32,33 +32,6 @@ def test_auto_rule_switches_at_the_documented_threshold():
     assert shipping.choose_shipping("join", None, budget_mb) == "broadcast"
     with pytest.raises(ValueError):
         shipping.choose_shipping("scatter", 1, budget_mb)
-
-
-def _routed(tmp_path, unit_keys: dict[int, np.ndarray], entries: dict[int, tuple], n_buckets: int,
-            directions=("forward", "reverse")) -> dict[int, list[bytes]]:
-    """The routes of ``unit_keys`` written as the routes job writes them, then every bucket's lookup
-    over its table ``entries`` (direction index -> (keys, probs)), in-process: unit -> its records."""
-    from spark_align.engine.mstep import part_name
-
-    pieces: dict[int, list] = {}
-    for unit, keys in unit_keys.items():
-        for p, piece in shipping.unit_routes(unit, keys, n_buckets):
-            pieces.setdefault(p, []).append(piece)
-    root = tmp_path / "routes"
-    root.mkdir(parents=True, exist_ok=True)
-    for p in range(n_buckets):
-        with open(root / part_name(p), "wb") as fh:
-            shipping.write_routes(fh, sorted(pieces.get(p, [])))
-    lookup = shipping.make_route_lookup(str(root), directions)
-    routed: dict[int, list[bytes]] = {}
-    for p in range(n_buckets):
-        mine = {}
-        for d, (keys, probs) in entries.items():
-            sel = shipping.key_buckets(keys, d, n_buckets) == p
-            mine[d] = (keys[sel], probs[sel])
-        for unit, record in lookup(p, mine):
-            routed.setdefault(unit, []).append(record)
-    return routed
 
 
 @pytest.mark.parametrize("batch_rows", [7, None], ids=["routes read 7 rows at a time", "routes read whole"])
@@ -78,7 +51,7 @@ def test_routed_entries_give_what_the_broadcast_lookup_gives(tmp_path, monkeypat
         table_probs = rng.uniform(0, 1, len(table_keys))
         whole[direction] = tables.DirectionTable(table_keys, table_probs)
         entries[d] = (table_keys, table_probs)
-    routed = _routed(tmp_path, unit_keys, entries, n_buckets=5)
+    routed = routed_records(tmp_path, unit_keys, entries, n_buckets=5)
     assert sorted(routed) == [0, 1, 2]
     if batch_rows is not None:  # written 7 rows at a time too
         assert pq.ParquetFile(tmp_path / "routes" / "part-00000.parquet").metadata.num_row_groups > 1
@@ -220,7 +193,7 @@ def _retrain(spark, base_run: str, new_run: str, cfg: RunConfig) -> dict[str, ob
 
 def _join_task_payloads(tmp_path, run_dir: str, table, flush_keys: int):
     """One join-path E-step task over every unit of ``run_dir`` with ``table``, in-process (routes and
-    lookups as ``_routed`` does them): (its payload records, the lexical sums they add up to as (keys,
+    lookups as ``routed_records`` does them): (its payload records, the lexical sums they add up to as (keys,
     hi, lo))."""
     import fsspec
 
@@ -233,7 +206,7 @@ def _join_task_payloads(tmp_path, run_dir: str, table, flush_keys: int):
     blocks_url = store.spark_path("encoded", "blocks")
     fs, _root = fsspec.core.url_to_fs(blocks_url)
     unit_keys = {u: shipping.unit_dictionary(fs, path, rg) for u, (path, rg) in enumerate(units)}
-    routed = _routed(tmp_path, unit_keys, shipping.bucket_entries(table), n_buckets=3)
+    routed = routed_records(tmp_path, unit_keys, shipping.bucket_entries(table), n_buckets=3)
     model, directions = IBM1(), ("forward", "reverse")
     estep = shipping.make_join_estep(model, directions, {d: model.init_dense(None) for d in directions},
                                      blocks_url=blocks_url, units=units, n_tasks=1, n_buckets=3,

@@ -12,7 +12,7 @@ from spark_align.engine import ingest, shipping, unit_index
 from spark_align.engine.estep import SCALAR
 from spark_align.kernels import counts, lookup, ragged
 from spark_align.models.ibm1 import IBM1
-from tests.engine.test_shipping import _routed
+from tests.engine.helpers import routed_records
 
 DIRECTIONS = ("forward", "reverse")
 
@@ -65,7 +65,7 @@ def test_join_estep_counts_the_same_with_a_stored_index_and_ignores_a_bad_one(tm
         keys = keys[(keys >> 32 != 0) if d == 1 else (keys & 0xFFFFFFFF) != 0]  # the NULL side's keys are not kept
         keys = keys[rng.random(len(keys)) < 0.9]  # and some pairs missing: the floor is taken there
         entries[d] = (keys, rng.uniform(0.01, 1.0, len(keys)))
-    routed = _routed(tmp_path, unit_keys, entries, n_buckets=3)
+    routed = routed_records(tmp_path, unit_keys, entries, n_buckets=3)
     model = IBM1()
     dense = {d: model.init_dense(None) for d in DIRECTIONS}
     index_root = str(tmp_path / "unit_index")
