@@ -28,6 +28,9 @@ of buckets), committed by ``encoded/routes/<buckets>.json``. Per iteration::
 
 A table in other buckets (the seeded random start, or one written by another
 number of reducers) first goes to the lookup tasks by bucket, through a shuffle.
+Without pruning the table's keys stay the same from the second iteration on, so
+a lookup keeps where each routes key sat in its table file
+(:class:`RoutePositions`) and the next takes the probabilities there.
 
 The E-step task reads a unit's blocks from Parquet itself (the blocks never
 pass through the shuffle), places the unit's records in its sorted keys
@@ -58,7 +61,9 @@ where many Python workers share one executor's memory.
 from __future__ import annotations
 
 import posixpath
+import struct
 import time
+import zlib
 
 import numpy as np
 import pyarrow as pa
@@ -260,50 +265,186 @@ def bucket_entries(part) -> dict[int, tuple[np.ndarray, np.ndarray]]:
 _RECORD_HEAD = 3  # int64s before a record's probabilities: its bucket, its direction, their number
 
 
+ROUTE_POSITIONS = "positions"  # encoded/routes/<buckets>/positions/part-PPPPP.bin (RoutePositions)
+
+
+class RoutePositions:
+    """Where each key of one bucket's routes sat in that bucket's table file, streamed in routes order.
+
+    The file: a head (magic, the table file's key digest (``engine.tables.KEYS_META``, 32 hex
+    characters), a bit per direction index it covers), then one int32 per routes row of those
+    directions in the routes' order: the row's position among the table file's rows of its direction,
+    -1 where the key is not there; then the number of rows and a CRC-32 of all before it. Written and
+    read a routes batch at a time, so neither side holds more than a batch of it."""
+
+    MAGIC = b"SAROUTP2"
+    HEAD = struct.Struct("<8s32sq")  # magic, digest, direction bits
+    TAIL = struct.Struct("<qI")  # rows, CRC-32
+
+    @staticmethod
+    def covers(directions: list[int]) -> int:
+        return sum(1 << d for d in directions)
+
+    @classmethod
+    def open_checked(cls, fs, path: str, digest: bytes, directions: list[int]):
+        """(an open file, its number of positions) for ``digest`` and ``directions``, the file whole and
+        undamaged (its CRC-32 checked in one streamed pass) and positioned at its first position; None
+        otherwise."""
+        try:
+            fh = fs.open(path, "rb")
+        except OSError:
+            return None
+        try:
+            size = fs.size(path)
+            head = fh.read(cls.HEAD.size)
+            if len(head) != cls.HEAD.size or size < cls.HEAD.size + cls.TAIL.size:
+                raise ValueError("too short")
+            magic, got_digest, bits = cls.HEAD.unpack(head)
+            body = size - cls.HEAD.size - cls.TAIL.size
+            if magic != cls.MAGIC or got_digest != digest or bits != cls.covers(directions) or body % 4:
+                raise ValueError("not positions for this table and these directions")
+            crc, left = zlib.crc32(head), body
+            while left:
+                piece = fh.read(min(left, 1 << 24))
+                if not piece:
+                    raise ValueError("truncated")
+                crc, left = zlib.crc32(piece, crc), left - len(piece)
+            tail = fh.read(cls.TAIL.size)
+            rows, stored_crc = cls.TAIL.unpack(tail) if len(tail) == cls.TAIL.size else (-1, 0)
+            if rows != body // 4 or zlib.crc32(tail[:8], crc) != stored_crc:
+                raise ValueError("damaged")
+            fh.seek(cls.HEAD.size)
+            return fh, rows
+        except (OSError, ValueError):
+            fh.close()
+            return None
+
+    @classmethod
+    def take(cls, fh, n: int) -> np.ndarray:
+        """The next ``n`` positions of a file from :meth:`open_checked`."""
+        data = fh.read(4 * n)
+        if len(data) != 4 * n:
+            raise RuntimeError("route positions are fewer than the routes")
+        return np.frombuffer(data, "<i4")
+
+
 def make_route_lookup(routes_url: str, directions: tuple[str, ...]):
     """The lookup of bucket ``p``: (p, its table entries) -> (unit, record) for every unit and direction
     with keys there. A record is int64 [p, direction index, n] then n float64 probabilities: the table's
     entry for each of the unit's keys of bucket ``p`` in that direction (ascending), ``MIN_PROB`` where
     it has none. The routes file is read :data:`ROUTE_BATCH_ROWS` rows at a time (a (direction, unit) run
     cut by a batch is kept for the next), so a lookup task holds one bucket of the table, not of the
-    routes, which grow with the corpus."""
+    routes, which grow with the corpus.
 
-    def records(p: int, rows: list[np.ndarray], entries: dict[int, tuple[np.ndarray, np.ndarray]]):
-        from spark_align.kernels import lookup
+    The entries are given as ``entries`` (direction index -> (keys ascending, probabilities)) or read
+    through ``table(columns)`` (the bucket's table file as Arrow, rows sorted by (dir, src, tgt), as
+    the reducers write them). With ``table`` and ``digest`` (the file's key digest), where each routes
+    key sat in the file is kept (:class:`RoutePositions`, ``positions/part-PPPPP.bin`` beside the
+    routes), and a later lookup over a file with the same keys reads only its ``dir`` and ``prob``
+    columns and the routes without their keys, and takes the probabilities at those positions. Like
+    the unit indexes (``engine.unit_index``) the file is a cache: missing, damaged, or for other keys,
+    the keys are searched for again and the file written again (under a temporary name, moved into
+    place when whole)."""
 
-        dirs, unit, keys = rows
-        for d in (DIRS.index(x) for x in directions):
-            lo, hi = np.searchsorted(dirs, [d, d + 1])  # sorted by direction first
-            if lo == hi:
-                continue
-            table_keys, table_probs = entries.get(d, (np.zeros(0, np.int64), np.zeros(0)))
-            # keys ascend within each unit: the search gallops forward and restarts at each unit
-            probs = lookup.find(table_keys, table_probs, keys[lo:hi], MIN_PROB)[2]
-            units_d = unit[lo:hi]
-            cuts = np.flatnonzero(np.diff(units_d)) + 1
-            for u, segment in zip(units_d[np.concatenate([[0], cuts])].tolist(), np.split(probs, cuts)):
-                yield u, np.array([p, d, len(segment)], np.int64).tobytes() + segment.tobytes()
+    def looked_up(p: int, entries: dict[int, tuple[np.ndarray, np.ndarray]] | None = None, *, table=None,
+                  digest: bytes | None = None):
+        import uuid
 
-    def looked_up(p: int, entries: dict[int, tuple[np.ndarray, np.ndarray]]):
         import fsspec
         import pyarrow.parquet as pq
 
         from spark_align.engine.mstep import part_name
+        from spark_align.kernels import lookup
+        from spark_align.store import ensure_parent
 
+        wanted = [DIRS.index(x) for x in directions]
         fs, root = fsspec.core.url_to_fs(routes_url)
+        positions_path = posixpath.join(root, ROUTE_POSITIONS, f"{part_name(p)[:-len('.parquet')]}.bin")
+        cacheable = entries is None and digest is not None and len(digest) == 32
+        stored = RoutePositions.open_checked(fs, positions_path, digest, wanted) if cacheable else None
+        keeping = crc = kept_rows = None
+        taken = 0  # positions taken from the stored file
+        if stored is not None:
+            part = table(["dir", "prob"])
+            dir_col, prob = (np.asarray(part.column(name).to_numpy()) for name in ("dir", "prob"))
+            values = {d: prob[lo:hi] for d in wanted for lo, hi in [np.searchsorted(dir_col, [d, d + 1])]}
+        else:
+            if entries is None:
+                entries = bucket_entries(table(["dir", "src", "tgt", "prob"]))
+            if cacheable:
+                tmp = f"{positions_path}.{uuid.uuid4().hex}.tmp"
+                try:
+                    ensure_parent(fs, positions_path)
+                    keeping = fs.open(tmp, "wb")
+                    head = RoutePositions.HEAD.pack(RoutePositions.MAGIC, digest, RoutePositions.covers(wanted))
+                    keeping.write(head)
+                    crc, kept_rows = zlib.crc32(head), 0
+                except OSError:
+                    keeping = None  # only the cache is lost
+
+        def records(rows: list[np.ndarray]):
+            nonlocal crc, kept_rows, taken
+            dirs, unit = rows[0], rows[1]
+            for d in wanted:
+                lo, hi = np.searchsorted(dirs, [d, d + 1])  # sorted by direction first
+                if lo == hi:
+                    continue
+                if stored is not None:
+                    pos = RoutePositions.take(stored[0], int(hi - lo))
+                    taken += hi - lo
+                    hit = pos >= 0
+                    if np.any(pos >= len(values[d])):
+                        raise RuntimeError(f"route positions of bucket {p} lie beyond its table file")
+                    probs = np.full(hi - lo, MIN_PROB)
+                    probs[hit] = values[d][pos[hit]]
+                else:
+                    table_keys, table_probs = entries.get(d, (np.zeros(0, np.int64), np.zeros(0)))
+                    # keys ascend within each unit: the search gallops forward and restarts at each unit
+                    pos, hit, probs = lookup.find(table_keys, table_probs, rows[2][lo:hi], MIN_PROB)
+                    if keeping is not None:
+                        data = np.where(hit, pos, -1).astype("<i4").tobytes()
+                        keeping.write(data)
+                        crc, kept_rows = zlib.crc32(data, crc), kept_rows + (hi - lo)
+                units_d = unit[lo:hi]
+                cuts = np.flatnonzero(np.diff(units_d)) + 1
+                for u, segment in zip(units_d[np.concatenate([[0], cuts])].tolist(), np.split(probs, cuts)):
+                    yield u, np.array([p, d, len(segment)], np.int64).tobytes() + segment.tobytes()
+
         carry = None
-        with fs.open(posixpath.join(root, part_name(p)), "rb") as fh:
-            for batch in pq.ParquetFile(fh).iter_batches(batch_size=ROUTE_BATCH_ROWS, columns=["dir", "unit", "key"]):
-                rows = [batch.column(i).to_numpy() for i in range(3)]
-                if carry is not None:
-                    rows = [np.concatenate([a, b]) for a, b in zip(carry, rows)]
-                starts = np.flatnonzero((rows[0][1:] != rows[0][:-1]) | (rows[1][1:] != rows[1][:-1])) + 1
-                last = int(starts[-1]) if len(starts) else 0  # the last run may go on in the next batch
-                carry = [a[last:] for a in rows]
-                if last:
-                    yield from records(p, [a[:last] for a in rows], entries)
-        if carry is not None and len(carry[0]):
-            yield from records(p, carry, entries)
+        columns = ["dir", "unit"] if stored is not None else ["dir", "unit", "key"]
+        try:
+            with fs.open(posixpath.join(root, part_name(p)), "rb") as fh:
+                for batch in pq.ParquetFile(fh).iter_batches(batch_size=ROUTE_BATCH_ROWS, columns=columns):
+                    rows = [batch.column(i).to_numpy() for i in range(len(columns))]
+                    if carry is not None:
+                        rows = [np.concatenate([a, b]) for a, b in zip(carry, rows)]
+                    starts = np.flatnonzero((rows[0][1:] != rows[0][:-1]) | (rows[1][1:] != rows[1][:-1])) + 1
+                    last = int(starts[-1]) if len(starts) else 0  # the last run may go on in the next batch
+                    carry = [a[last:] for a in rows]
+                    if last:
+                        yield from records([a[:last] for a in rows])
+            if carry is not None and len(carry[0]):
+                yield from records(carry)
+            if stored is not None and taken != stored[1]:
+                raise RuntimeError(f"route positions of bucket {p} are more than its routes")
+            if keeping is not None:
+                tail = struct.pack("<q", kept_rows)
+                keeping.write(tail + struct.pack("<I", zlib.crc32(tail, crc)))
+                keeping.close()
+                keeping = None
+                try:
+                    fs.mv(tmp, positions_path)
+                except OSError:  # only the cache is lost
+                    fs.rm(tmp)
+        finally:
+            if stored is not None:
+                stored[0].close()
+            if keeping is not None:  # not whole: dropped
+                keeping.close()
+                try:
+                    fs.rm(tmp)
+                except OSError:
+                    pass
         note_task_memory("lookup")
 
     return looked_up
@@ -471,7 +612,7 @@ def routed_entries(spark, store, units: list[tuple[str, int]], table_path: str, 
     the lookup tasks add the seconds of their own work to (reading their table bucket and routes,
     finding the entries; not handing the records to Spark), for the iteration's metrics (a retried
     task adds its seconds again)."""
-    from spark_align.engine.tables import TableLayout
+    from spark_align.engine.tables import KEYS_META, TableLayout
     from spark_align.store import fsspec_url
 
     sc = spark.sparkContext
@@ -480,13 +621,13 @@ def routed_entries(spark, store, units: list[tuple[str, int]], table_path: str, 
     layout = TableLayout.read(table_url)
     lookup_bucket = make_route_lookup(routes_url, directions)
 
-    def read_part(name: str):
+    def read_part(name: str, columns=("dir", "src", "tgt", "prob")):
         import fsspec
         import pyarrow.parquet as pq
 
         fs, root = fsspec.core.url_to_fs(table_url)
         with fs.open(posixpath.join(root, name), "rb") as fh:
-            return pq.read_table(fh, columns=["dir", "src", "tgt", "prob"])
+            return pq.read_table(fh, columns=list(columns))
 
     def timed(make):
         # the seconds spent making the records (inside next()), not those the consumer spends on them
@@ -502,9 +643,10 @@ def routed_entries(spark, store, units: list[tuple[str, int]], table_path: str, 
             seconds.add(spent)
 
     if layout.bucketed and len(layout.names) == n_buckets:
-        names = layout.names
+        names, digests = layout.names, [m.get(KEYS_META) for m in layout.metas]
         looked = sc.parallelize(range(n_buckets), n_buckets).flatMap(
-            lambda p: timed(lambda: lookup_bucket(p, bucket_entries(read_part(names[p])))))
+            lambda p: timed(lambda: lookup_bucket(p, table=lambda columns: read_part(names[p], columns),
+                                                  digest=digests[p])))
     else:
         def by_bucket(name: str):
             part = read_part(name)

@@ -76,6 +76,84 @@ def test_routed_entries_give_what_the_broadcast_lookup_gives(tmp_path, monkeypat
         shipping.unit_entries(unit_keys[1][1:], records, ("forward",), 5, 1)
 
 
+def test_lookups_keep_where_route_keys_sat_and_take_them_for_a_table_with_the_same_keys(tmp_path):
+    """A lookup over a table file with a key digest keeps each routes key's position in it; a later
+    lookup over a file with that digest reads only its probabilities and gives the same records, bit
+    for bit. Damaged positions, or a table with other keys, are searched again (and kept again)."""
+    import fsspec
+    import pyarrow as pa
+
+    rng = np.random.default_rng(11)
+    unit_keys = {u: np.unique(ragged.make_key(rng.integers(0, 300, 400), rng.integers(0, 300, 400)))
+                 for u in range(3)}
+    n_buckets = 2
+    entries = {}
+    for d in (0, 1):
+        every = np.unique(np.concatenate(list(unit_keys.values())))
+        keys = every[rng.random(len(every)) < 0.8]
+        entries[d] = (keys, rng.uniform(0, 1, len(keys)))
+    want = routed_records(tmp_path, unit_keys, entries, n_buckets)  # entries given: nothing kept
+    root = tmp_path / "routes"
+    assert not (root / shipping.ROUTE_POSITIONS).exists()
+
+    def bucket_file(p, probs_scale=1.0):
+        rows = [(d, k, pr * probs_scale) for d, (keys, probs) in entries.items()
+                for k, pr in zip(keys, probs) if shipping.key_buckets(np.array([k]), d, n_buckets)[0] == p]
+        rows.sort()
+        return pa.table({"dir": pa.array([r[0] for r in rows], pa.int8()),
+                         "src": pa.array([r[1] >> 32 for r in rows], pa.int32()),
+                         "tgt": pa.array([r[1] & 0xFFFFFFFF for r in rows], pa.int32()),
+                         "prob": pa.array([r[2] for r in rows], pa.float64())})
+
+    lookup = shipping.make_route_lookup(str(root), ("forward", "reverse"))
+    read = []
+
+    def run(digest, scale=1.0):
+        got = {}
+        for p in range(n_buckets):
+            part = bucket_file(p, scale)
+
+            def table(columns, part=part):
+                read.append(tuple(columns))
+                return part.select(columns)
+            for unit, record in lookup(p, table=table, digest=digest):
+                got.setdefault(unit, []).append(record)
+        return got
+
+    digest = b"0123456789abcdef" * 2
+    assert run(digest) == want  # searched, positions kept
+    kept = sorted((root / shipping.ROUTE_POSITIONS).iterdir())
+    assert [f.name for f in kept] == ["part-00000.bin", "part-00001.bin"]
+    read.clear()
+    assert run(digest) == want  # taken at the kept positions
+    assert set(read) == {("dir", "prob")}
+    # new probabilities in the same keys: the same positions, the new values
+    scaled = run(digest, 0.5)
+    halved = routed_records(tmp_path / "again", unit_keys, {d: (k, pr * 0.5) for d, (k, pr) in entries.items()},
+                            n_buckets)
+    assert scaled == halved
+    # damaged positions, or positions for other keys: searched again
+    data = bytearray(kept[0].read_bytes())
+    data[60] ^= 1
+    kept[0].write_bytes(bytes(data))
+    read.clear()
+    assert run(digest) == want
+    assert ("dir", "src", "tgt", "prob") in read
+    read.clear()
+    assert run(b"f" * 32) == want
+    assert set(read) == {("dir", "src", "tgt", "prob")}
+    fs = fsspec.filesystem("file")
+    for path in kept:
+        for digest_, dirs, usable in ((b"f" * 32, [0, 1], True), (digest, [0, 1], False), (b"f" * 32, [0], False)):
+            opened = shipping.RoutePositions.open_checked(fs, str(path), digest_, dirs)
+            assert (opened is not None) == usable
+            if opened is not None:
+                opened[0].close()
+    kept[1].write_bytes(kept[1].read_bytes()[:-1])  # cut short
+    assert shipping.RoutePositions.open_checked(fs, str(kept[1]), b"f" * 32, [0, 1]) is None
+    assert sorted(p.name for p in (root / shipping.ROUTE_POSITIONS).iterdir()) == ["part-00000.bin", "part-00001.bin"]
+
+
 def test_workers_read_the_reducers_files_with_their_buckets(tmp_path):
     """Tables read from the reducers' files one by one equal the table read whole, and every entry's
     reducer bucket (known from its file) is the hash the reducers use; a file without the bucket
