@@ -26,6 +26,8 @@ from dataclasses import dataclass
 import numpy as np
 
 from spark_align.engine.hints import read_cached, write_cached
+from spark_align.engine.shipping import bucket_order, distinct_keys
+from spark_align.kernels import lookup
 
 _MAGIC = b"SAUNIT01"
 _HEADER = struct.Struct("<8sqqq")  # magic, keys, positions, buckets
@@ -54,18 +56,11 @@ class UnitIndex:
 
     def order(self, d: int, n_buckets: int) -> tuple[np.ndarray, np.ndarray]:
         """``bucket_order`` of the keys in direction ``d``: stored for ``self.n_buckets``, else worked out."""
-        if n_buckets == self.n_buckets:
-            return self.orders[d]
-        from spark_align.engine.shipping import bucket_order
-
-        return bucket_order(self.keys, d, n_buckets)
+        return self.orders[d] if n_buckets == self.n_buckets else bucket_order(self.keys, d, n_buckets)
 
 
 def build(dictionaries: list[np.ndarray], n_buckets: int) -> UnitIndex:
     """The index of a unit whose blocks have these dictionaries (each sorted, as blocks store them)."""
-    from spark_align.engine.shipping import bucket_order, distinct_keys
-    from spark_align.kernels import lookup
-
     keys = distinct_keys(dictionaries)
     positions = np.empty(sum(len(k) for k in dictionaries), np.int32)
     at = 0
