@@ -371,7 +371,8 @@ def make_route_lookup(routes_url: str, directions: tuple[str, ...]):
         else:
             if entries is None:
                 entries = bucket_entries(table(["dir", "src", "tgt", "prob"]))
-            if cacheable:
+            # positions are kept as int32: not for a bucket file of 2^31 rows or more in a direction
+            if cacheable and all(len(keys) < 2 ** 31 for keys, _probs in entries.values()):
                 tmp = f"{positions_path}.{uuid.uuid4().hex}.tmp"
                 try:
                     ensure_parent(fs, positions_path)
