@@ -24,6 +24,7 @@ from __future__ import annotations
 import json
 import posixpath
 import uuid
+import zlib
 from dataclasses import dataclass
 from typing import Any
 
@@ -50,6 +51,68 @@ def ensure_parent(fs, path: str) -> None:
     """Create the directory ``path`` goes in, where ``fs`` has directories (never a bucket)."""
     if has_directories(fs):
         fs.makedirs(posixpath.dirname(path), exist_ok=True)
+
+
+def read_cached(fs, path: str, decode):
+    """``decode`` of a cache file's bytes, or None if it is absent, unreadable or does not decode
+    (``decode`` raises ValueError)."""
+    try:
+        with fs.open(path, "rb") as fh:
+            return decode(fh.read())
+    except (OSError, ValueError):
+        return None
+
+
+class CacheWriter:
+    """A cache file written as a stream, whole or not at all: under a unique temporary name, moved into
+    place by :meth:`commit`. Any OSError only loses the cache (what is written after it is dropped).
+    ``crc`` and ``size``: the CRC-32 and the number of the bytes written so far."""
+
+    def __init__(self, fs, path: str) -> None:
+        self.fs, self.path, self.crc, self.size = fs, path, 0, 0
+        self.tmp = f"{path}.{uuid.uuid4().hex}.tmp"
+        try:
+            ensure_parent(fs, path)
+            self.fh = fs.open(self.tmp, "wb")
+        except OSError:
+            self.fh = None
+
+    def write(self, data: bytes) -> None:
+        if self.fh is None:
+            return
+        try:
+            self.fh.write(data)
+            self.crc, self.size = zlib.crc32(data, self.crc), self.size + len(data)
+        except OSError:
+            self.discard()
+
+    def commit(self) -> None:
+        """Move the file into place (nothing if it was lost)."""
+        if self.fh is None:
+            return
+        try:
+            self.fh.close()
+            self.fh = None
+            self.fs.mv(self.tmp, self.path)
+        except OSError:
+            self.discard()
+
+    def discard(self) -> None:
+        """Drop the file, if it is not in place yet."""
+        fh, self.fh = self.fh, None
+        try:
+            if fh is not None:
+                fh.close()
+            self.fs.rm(self.tmp)
+        except OSError:
+            pass
+
+
+def write_cached(fs, path: str, data: bytes) -> None:
+    """Write a cache file whole or not at all (:class:`CacheWriter`); a failure only loses the cache."""
+    writer = CacheWriter(fs, path)
+    writer.write(data)
+    writer.commit()
 
 
 def fsspec_url(url: str) -> str:

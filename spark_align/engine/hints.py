@@ -27,10 +27,9 @@ ingestion, so hints never outlive the blocks they describe.
 from __future__ import annotations
 
 import posixpath
-import uuid
 
 from spark_align.kernels.lookup import StoredHints, decode_hints, encode_hints
-from spark_align.store import ensure_parent
+from spark_align.store import read_cached, write_cached
 
 
 def hints_path(root: str, direction: str, blocks_file: str, row_group: int) -> str:
@@ -47,29 +46,3 @@ def read(fs, root: str, direction: str, blocks_file: str, row_group: int) -> Sto
 def write(fs, root: str, direction: str, blocks_file: str, row_group: int, stored: StoredHints) -> None:
     """Store a row group's hints (whole file or nothing; a failure only loses the cache)."""
     write_cached(fs, hints_path(root, direction, blocks_file, row_group), encode_hints(stored))
-
-
-def read_cached(fs, path: str, decode):
-    """``decode`` of a cache file's bytes, or None if it is absent, unreadable or does not decode
-    (``decode`` raises ValueError)."""
-    try:
-        with fs.open(path, "rb") as fh:
-            return decode(fh.read())
-    except (OSError, ValueError):
-        return None
-
-
-def write_cached(fs, path: str, data: bytes) -> None:
-    """Write a cache file whole or not at all: under a unique temporary name, then moved into place;
-    a failure only loses the cache."""
-    tmp = f"{path}.{uuid.uuid4().hex}.tmp"
-    try:
-        ensure_parent(fs, path)
-        with fs.open(tmp, "wb") as fh:
-            fh.write(data)
-        fs.mv(tmp, path)
-    except OSError:
-        try:
-            fs.rm(tmp)
-        except OSError:
-            pass

@@ -320,6 +320,27 @@ class RoutePositions:
             return None
 
     @classmethod
+    def writer(cls, fs, path: str, digest: bytes, directions: list[int]):
+        """A :class:`~spark_align.store.CacheWriter` for ``path``, its head written: then :meth:`put` the
+        positions in routes order and :meth:`finish` it."""
+        from spark_align.store import CacheWriter
+
+        out = CacheWriter(fs, path)
+        out.write(cls.HEAD.pack(cls.MAGIC, digest, cls.covers(directions)))
+        return out
+
+    @staticmethod
+    def put(out, pos: np.ndarray, hit: np.ndarray) -> None:
+        out.write(np.where(hit, pos, -1).astype("<i4").tobytes())
+
+    @classmethod
+    def finish(cls, out) -> None:
+        """The tail (rows, CRC-32 of all before it) written, and the file moved into place."""
+        out.write(struct.pack("<q", (out.size - cls.HEAD.size) // 4))
+        out.write(struct.pack("<I", out.crc))
+        out.commit()
+
+    @classmethod
     def take(cls, fh, n: int) -> np.ndarray:
         """The next ``n`` positions of a file from :meth:`open_checked`."""
         data = fh.read(4 * n)
@@ -348,21 +369,18 @@ def make_route_lookup(routes_url: str, directions: tuple[str, ...]):
 
     def looked_up(p: int, entries: dict[int, tuple[np.ndarray, np.ndarray]] | None = None, *, table=None,
                   digest: bytes | None = None):
-        import uuid
-
         import fsspec
         import pyarrow.parquet as pq
 
         from spark_align.engine.mstep import part_name
         from spark_align.kernels import lookup
-        from spark_align.store import ensure_parent
 
         wanted = [DIRS.index(x) for x in directions]
         fs, root = fsspec.core.url_to_fs(routes_url)
         positions_path = posixpath.join(root, ROUTE_POSITIONS, f"{part_name(p)[:-len('.parquet')]}.bin")
         cacheable = entries is None and digest is not None and len(digest) == 32
         stored = RoutePositions.open_checked(fs, positions_path, digest, wanted) if cacheable else None
-        keeping = crc = kept_rows = None
+        keeping = None  # a RoutePositions.writer for what the searches find
         taken = 0  # positions taken from the stored file
         if stored is not None:
             part = table(["dir", "prob"])
@@ -373,18 +391,10 @@ def make_route_lookup(routes_url: str, directions: tuple[str, ...]):
                 entries = bucket_entries(table(["dir", "src", "tgt", "prob"]))
             # positions are kept as int32: not for a bucket file of 2^31 rows or more in a direction
             if cacheable and all(len(keys) < 2 ** 31 for keys, _probs in entries.values()):
-                tmp = f"{positions_path}.{uuid.uuid4().hex}.tmp"
-                try:
-                    ensure_parent(fs, positions_path)
-                    keeping = fs.open(tmp, "wb")
-                    head = RoutePositions.HEAD.pack(RoutePositions.MAGIC, digest, RoutePositions.covers(wanted))
-                    keeping.write(head)
-                    crc, kept_rows = zlib.crc32(head), 0
-                except OSError:
-                    keeping = None  # only the cache is lost
+                keeping = RoutePositions.writer(fs, positions_path, digest, wanted)
 
         def records(rows: list[np.ndarray]):
-            nonlocal crc, kept_rows, taken
+            nonlocal taken
             dirs, unit = rows[0], rows[1]
             for d in wanted:
                 lo, hi = np.searchsorted(dirs, [d, d + 1])  # sorted by direction first
@@ -403,9 +413,7 @@ def make_route_lookup(routes_url: str, directions: tuple[str, ...]):
                     # keys ascend within each unit: the search gallops forward and restarts at each unit
                     pos, hit, probs = lookup.find(table_keys, table_probs, rows[2][lo:hi], MIN_PROB)
                     if keeping is not None:
-                        data = np.where(hit, pos, -1).astype("<i4").tobytes()
-                        keeping.write(data)
-                        crc, kept_rows = zlib.crc32(data, crc), kept_rows + (hi - lo)
+                        RoutePositions.put(keeping, pos, hit)
                 units_d = unit[lo:hi]
                 cuts = np.flatnonzero(np.diff(units_d)) + 1
                 for u, segment in zip(units_d[np.concatenate([[0], cuts])].tolist(), np.split(probs, cuts)):
@@ -429,23 +437,13 @@ def make_route_lookup(routes_url: str, directions: tuple[str, ...]):
             if stored is not None and taken != stored[1]:
                 raise RuntimeError(f"route positions of bucket {p} are more than its routes")
             if keeping is not None:
-                tail = struct.pack("<q", kept_rows)
-                keeping.write(tail + struct.pack("<I", zlib.crc32(tail, crc)))
-                keeping.close()
+                RoutePositions.finish(keeping)
                 keeping = None
-                try:
-                    fs.mv(tmp, positions_path)
-                except OSError:  # only the cache is lost
-                    fs.rm(tmp)
         finally:
             if stored is not None:
                 stored[0].close()
             if keeping is not None:  # not whole: dropped
-                keeping.close()
-                try:
-                    fs.rm(tmp)
-                except OSError:
-                    pass
+                keeping.discard()
         note_task_memory("lookup")
 
     return looked_up

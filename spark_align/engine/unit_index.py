@@ -25,9 +25,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from spark_align.engine.hints import read_cached, write_cached
 from spark_align.engine.shipping import bucket_order, distinct_keys
 from spark_align.kernels import lookup
+from spark_align.store import read_cached, write_cached
 
 _MAGIC = b"SAUNIT01"
 _HEADER = struct.Struct("<8sqqq")  # magic, keys, positions, buckets

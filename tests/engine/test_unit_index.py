@@ -2,6 +2,8 @@
 and ignores one that is damaged or does not fit its blocks."""
 from __future__ import annotations
 
+import zlib
+
 import fsspec
 import numpy as np
 import pyarrow as pa
@@ -99,3 +101,34 @@ def test_join_estep_counts_the_same_with_a_stored_index_and_ignores_a_bad_one(tm
         fh.write(unit_index.encode(other))
     assert run(index_root) == want
     assert unit_index.read(fsspec.filesystem("file"), index_root, path, 1).fits([blocks[2].n_dict, blocks[3].n_dict])
+
+
+def test_a_cache_file_is_written_whole_or_not_at_all(tmp_path):
+    # store.CacheWriter: moved into place on commit; a failed write or a discard leaves nothing behind
+    from spark_align.store import CacheWriter
+
+    fs = fsspec.filesystem("file")
+    whole = CacheWriter(fs, str(tmp_path / "c" / "whole.bin"))
+    whole.write(b"abc")
+    whole.write(b"de")
+    assert (whole.size, whole.crc) == (5, zlib.crc32(b"abcde"))
+    whole.commit()
+    assert (tmp_path / "c" / "whole.bin").read_bytes() == b"abcde"
+
+    class Failing:
+        def write(self, _data):
+            raise OSError("disk full")
+
+        def close(self):
+            pass
+
+    broken = CacheWriter(fs, str(tmp_path / "c" / "broken.bin"))
+    broken.write(b"abc")
+    broken.fh.close()
+    broken.fh = Failing()
+    broken.write(b"de")  # lost: no error, and nothing later is written
+    broken.commit()
+    dropped = CacheWriter(fs, str(tmp_path / "c" / "dropped.bin"))
+    dropped.write(b"abc")
+    dropped.discard()
+    assert sorted(p.name for p in (tmp_path / "c").iterdir()) == ["whole.bin"]
