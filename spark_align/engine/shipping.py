@@ -71,7 +71,7 @@ import pyarrow as pa
 from spark_align.config import SHIPPINGS as SHIPPING_MODES
 from spark_align.engine.estep import _maybe_fail, note_task_memory
 from spark_align.engine.ingest import block_array
-from spark_align.engine.tables import DIRS, MIN_PROB, DirectionTable, keep_freed_memory
+from spark_align.engine.tables import DIRS, MIN_PROB, DirectionTable, direction_span, keep_freed_memory
 from spark_align.kernels import counts, ragged
 
 BYTES_PER_ENTRY = 48  # per Python worker per entry on the whole-table path (see the module docstring)
@@ -385,7 +385,7 @@ def make_route_lookup(routes_url: str, directions: tuple[str, ...]):
         if stored is not None:
             part = table(["dir", "prob"])
             dir_col, prob = (np.asarray(part.column(name).to_numpy()) for name in ("dir", "prob"))
-            values = {d: prob[lo:hi] for d in wanted for lo, hi in [np.searchsorted(dir_col, [d, d + 1])]}
+            values = {d: prob[slice(*direction_span(dir_col, d))] for d in wanted}
         else:
             if entries is None:
                 entries = bucket_entries(table(["dir", "src", "tgt", "prob"]))
@@ -397,7 +397,7 @@ def make_route_lookup(routes_url: str, directions: tuple[str, ...]):
             nonlocal taken
             dirs, unit = rows[0], rows[1]
             for d in wanted:
-                lo, hi = np.searchsorted(dirs, [d, d + 1])  # sorted by direction first
+                lo, hi = direction_span(dirs, d)  # sorted by direction first
                 if lo == hi:
                     continue
                 if stored is not None:

@@ -102,6 +102,9 @@ class Held:
     def __init__(self, value) -> None:
         self.value = value
 
+    def load(self, threads: int = 1):
+        return self.value
+
 
 _WORKER_CACHE: dict = {}
 _LAYOUT = "layout"  # the cache's entry for the last table's TableLayout
@@ -125,6 +128,10 @@ class TableSource:
 
     @property
     def value(self) -> dict[str, DirectionTable]:
+        return self.load()
+
+    def load(self, threads: int = 1) -> dict[str, DirectionTable]:
+        """:attr:`value`, read (if this worker has not yet) with ``threads`` files at a time."""
         key = (self.url, self.directions, self.vocab_sizes, self.token)
         if key not in _WORKER_CACHE:
             previous = _WORKER_CACHE.pop(_LAYOUT, None)
@@ -136,7 +143,7 @@ class TableSource:
                 if previous is not None and not previous.same_keys(layout, self.directions):
                     previous = None  # free the previous keys before reading new ones
                 _WORKER_CACHE[key] = read_worker_tables(self.url, self.directions, layout=layout,
-                                                        previous=previous)
+                                                        previous=previous, threads=threads)
                 _WORKER_CACHE[_LAYOUT] = layout
         return _WORKER_CACHE[key]
 
@@ -273,7 +280,7 @@ class TableLayout:
 
 
 def read_worker_tables(url: str, directions: tuple[str, ...], *, layout: TableLayout | None = None,
-                       previous: TableLayout | None = None) -> dict[str, DirectionTable]:
+                       previous: TableLayout | None = None, threads: int = 1) -> dict[str, DirectionTable]:
     """A checkpoint table as the E-step uses it, read from the reducers' files one at a time.
 
     Each reducer file holds one bucket's rows sorted by (dir, src, tgt) and names its bucket in its
@@ -285,6 +292,7 @@ def read_worker_tables(url: str, directions: tuple[str, ...], *, layout: TableLa
     caller has checked); then only the ``prob`` column is read, and the keys and their merge are
     shared with the previous table. Without pruning, every table after the first has the same keys.
     ``layout`` (this table's footers, if already read) is completed with what the read learns.
+    ``threads``: files read at once (the reads release the GIL).
     """
     import fsspec
     import pyarrow.parquet as pq
@@ -293,39 +301,64 @@ def read_worker_tables(url: str, directions: tuple[str, ...], *, layout: TableLa
     if not layout.bucketed:
         return tables_from_arrow(read_table_arrow(url), directions)
     fs, root = fsspec.core.url_to_fs(url)
+
+    def read(name: str, columns: list[str]) -> list[np.ndarray]:
+        with fs.open(posixpath.join(root, name), "rb") as fh:
+            part = pq.read_table(fh, columns=columns)
+        return [part.column(i).to_numpy() for i in range(len(columns))]
+
     if previous is not None:
         runs_p: dict[str, list] = {d: [] for d in directions}
-        for name, span in zip(layout.names, previous.spans):
-            with fs.open(posixpath.join(root, name), "rb") as fh:
-                prob = pq.read_table(fh, columns=["prob"]).column(0).to_numpy()
+        probs = map_threads(lambda name: read(name, ["prob"])[0], layout.names, threads)
+        for prob, span in zip(probs, previous.spans):
             for d in directions:
                 runs_p[d].append(prob[span[d][0]:span[d][1]])
-        out = {}
-        for d in directions:
+
+        def gather(d: str) -> DirectionTable:
             keys, order = previous.merged[d]
-            out[d] = DirectionTable(keys, np.concatenate(runs_p[d])[order], keys_id=layout.keys_id(d))
+            return DirectionTable(keys, np.concatenate(runs_p[d])[order], keys_id=layout.keys_id(d))
+
+        out = dict(zip(directions, map_threads(gather, list(directions), threads)))
         layout.spans, layout.merged = previous.spans, previous.merged
         return out
-    runs: dict[str, list] = {d: [] for d in directions}
-    spans = []
-    for name in layout.names:
-        with fs.open(posixpath.join(root, name), "rb") as fh:
-            part = pq.read_table(fh, columns=["dir", "src", "tgt", "prob"])
-        dir_col, src, tgt, prob = (part.column(i).to_numpy() for i in range(4))
-        span = {}
-        for d in directions:
-            lo, hi = np.searchsorted(dir_col, [DIRS.index(d), DIRS.index(d) + 1])  # sorted by dir first
-            span[d] = (int(lo), int(hi))
-            runs[d].append((ragged.make_key(src[lo:hi], tgt[lo:hi]), prob[lo:hi]))
-        spans.append(span)
-    out, merged = {}, {}
-    for d in directions:
-        keys, probs = (np.concatenate(x) for x in zip(*runs[d]))
+
+    def read_runs(name: str) -> tuple[dict, dict]:
+        # one file's row span and (keys, probabilities) per direction; its other columns are freed here
+        dir_col, src, tgt, prob = read(name, ["dir", "src", "tgt", "prob"])
+        span = {d: direction_span(dir_col, DIRS.index(d)) for d in directions}  # sorted by dir first
+        return span, {d: (ragged.make_key(src[lo:hi], tgt[lo:hi]), prob[lo:hi]) for d, (lo, hi) in span.items()}
+
+    spans, runs = zip(*map_threads(read_runs, layout.names, threads))
+
+    def merge(d: str) -> DirectionTable:
+        keys, probs = (np.concatenate(x) for x in zip(*(run[d] for run in runs)))
         order = np.argsort(keys, kind="stable")  # merges the runs: 0.04-0.07 s for 3.4M entries
-        out[d] = DirectionTable(keys[order], probs[order], keys_id=layout.keys_id(d))
-        merged[d] = (out[d].keys, order)  # position k of the sorted table came from row order[k] of the files
-    layout.spans, layout.merged = spans, merged
+        return DirectionTable(keys[order], probs[order], keys_id=layout.keys_id(d)), order
+
+    out, merged = {}, {}
+    for d, (table, order) in zip(directions, map_threads(merge, list(directions), threads)):
+        out[d] = table
+        merged[d] = (table.keys, order)  # position k of the sorted table came from row order[k] of the files
+    layout.spans, layout.merged = list(spans), merged
     return out
+
+
+def direction_span(dir_col: np.ndarray, d: int) -> tuple[int, int]:
+    """(first, end) rows of direction ``d`` in a column sorted by direction. The values searched for
+    have the column's type: numpy would otherwise copy the whole column to a wider one (0.08 s at 8M
+    rows, against microseconds)."""
+    lo, hi = np.searchsorted(dir_col, np.array([d, d + 1], dtype=dir_col.dtype))
+    return int(lo), int(hi)
+
+
+def map_threads(fn, items: list, threads: int) -> list:
+    """``[fn(x) for x in items]``, on up to ``threads`` threads (for work that releases the GIL)."""
+    if threads <= 1 or len(items) <= 1:
+        return [fn(x) for x in items]
+    from concurrent.futures import ThreadPoolExecutor
+
+    with ThreadPoolExecutor(min(threads, len(items))) as pool:
+        return list(pool.map(fn, items))
 
 
 def _read_parquet_on_driver(spark, path: str):
