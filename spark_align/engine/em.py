@@ -9,6 +9,8 @@ small sums (dense statistics, log-likelihood); it never holds the table.
 """
 from __future__ import annotations
 
+import os
+import re
 import time
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -27,12 +29,63 @@ from spark_align.store import FORMAT_VERSION, RunStore, fsspec_url
 TASKS_PER_CORE = 2
 # Spark setting that overrides TASKS_PER_CORE (``--conf spark.spark_align.estepTasksPerCore=1``).
 TASKS_PER_CORE_CONF = "spark.spark_align.estepTasksPerCore"
-
+# Threads per E-step task on the whole-table path (``--conf spark.spark_align.estepThreads=N``); see
+# :func:`estep_tasks`.
+THREADS_CONF = "spark.spark_align.estepThreads"
 
 
 def tasks_per_core(value: str) -> int:
     """The E-step tasks per core a ``TASKS_PER_CORE_CONF`` value asks for (a whole number, at least 1)."""
     return whole_number_setting(TASKS_PER_CORE_CONF, value)
+
+
+def local_cores(master: str) -> int | None:
+    """The cores of a local-mode master (``local``, ``local[N]``, ``local[*]``, each also with ``,F``
+    retries); None for any other master (``local-cluster[...]`` included)."""
+    m = re.fullmatch(r"local(?:\[(\*|\d+)(?:,\d+)?\])?", master.strip())
+    if m is None:
+        return None
+    if m.group(1) is None:
+        return 1
+    return (os.cpu_count() or 1) if m.group(1) == "*" else int(m.group(1))
+
+
+def estep_tasks(n_units: int, cores: int, per_core: int, threads: int, *, local: bool) -> int:
+    """How many E-step tasks a whole-table iteration runs over ``n_units`` units on ``cores`` cores.
+
+    One thread per task: ``per_core`` tasks per core. ``threads`` per task in local mode: one wave of
+    ``cores // threads`` tasks, so that no more threads run than there are cores (Spark counts each task
+    as one core there, and the E-step stage has no other tasks). On a cluster each task claims
+    ``threads`` cores through stage-level scheduling, and there are ``per_core`` tasks per ``threads``
+    cores."""
+    if threads == 1:
+        wanted = per_core * cores
+    elif local:
+        wanted = cores // threads
+    else:
+        wanted = per_core * cores // threads
+    return max(1, min(n_units, wanted))
+
+
+def claim_task_cpus(spark, rdd, threads: int):
+    """``rdd`` with its tasks claiming ``threads`` cores each (a Spark task resource profile); ConfigError
+    naming the cause where the cluster cannot do that or its executors have fewer cores."""
+    from pyspark.resource import ResourceProfileBuilder, TaskResourceRequests
+
+    executor_cores = spark.conf.get("spark.executor.cores", None)
+    cluster = re.fullmatch(r"local-cluster\[\s*\d+\s*,\s*(\d+)\s*,\s*\d+\s*\]", spark.sparkContext.master)
+    if cluster is not None:
+        executor_cores = cluster.group(1)
+    if executor_cores is not None and int(executor_cores) < threads:
+        raise ConfigError(f"{THREADS_CONF}={threads} is more than the {executor_cores} core(s) of each executor")
+    try:
+        return rdd.withResources(ResourceProfileBuilder().require(TaskResourceRequests().cpus(threads)).build)
+    except Exception as exc:  # py4j's error, carrying the scheduler's exception
+        java = getattr(exc, "java_exception", None)
+        cause = (java.getMessage() if java is not None else None) or str(exc).strip() or type(exc).__name__
+        cause = cause.splitlines()[0]
+        raise ConfigError(f"{THREADS_CONF}={threads} needs Spark's stage-level scheduling (a standalone, YARN or "
+                          f"Kubernetes cluster with dynamic allocation off); this one refused: {cause}") from None
 
 
 def n_reducers(spark) -> int:
@@ -148,20 +201,29 @@ class Trainer:
         units = self.block_units()
         per_core = tasks_per_core(self.spark.conf.get(TASKS_PER_CORE_CONF, str(TASKS_PER_CORE)))
         n_tasks = max(1, min(len(units), per_core * sc.defaultParallelism))
+        threads = whole_number_setting(THREADS_CONF, self.spark.conf.get(THREADS_CONF, "1"))  # whole-table path
         if path == "join":
             flush_keys = whole_number_setting(shipping.TASK_KEYS_CONF, self.spark.conf.get(
                 shipping.TASK_KEYS_CONF, str(shipping.TASK_KEYS)))
             route_seconds = sc.accumulator(0.0)
+            used_threads = 1
             pairs = shipping.join_payloads(self.spark, self.store, units, state.table_path, model, self.directions,
                                            state.dense, n_tasks=n_tasks, n_buckets=n_parts, flush_keys=flush_keys,
                                            lookup_seconds=route_seconds)
         else:
             route_seconds = None
+            used_threads = threads
             source = tables_mod.table_source(state.table_path, self.directions, src_v, tgt_v)
+            local = local_cores(sc.master)
+            cores = local if local is not None and threads > 1 else sc.defaultParallelism
+            n_tasks = estep_tasks(len(units), cores, per_core, threads, local=local is not None)
             estep = make_estep(model, self.directions, source, state.dense,
                                blocks_url=fsspec_url(self.store.spark_path("encoded", "blocks")), n_buckets=n_parts,
-                               hints_url=fsspec_url(self.store.spark_path("encoded", "hints")))
-            pairs = sc.parallelize(units, n_tasks).mapPartitions(estep)
+                               hints_url=fsspec_url(self.store.spark_path("encoded", "hints")), threads=threads)
+            tasks = sc.parallelize(units, n_tasks)
+            if threads > 1 and local is None:
+                tasks = claim_task_cpus(self.spark, tasks, threads)
+            pairs = tasks.mapPartitions(estep)
         self.store.remove(rel, "lex")  # what an interrupted attempt at this iteration left
         started = time.perf_counter()
         with faults.arm_task_kill(self.spark, "estep", stage.model, state.iteration + 1), \
@@ -200,6 +262,7 @@ class Trainer:
                           # the join path's lookup tasks (shipping.routed_entries); 0 on the broadcast path
                           "route_lookup_seconds": float(route_seconds.value) if route_seconds is not None else 0.0,
                           "job_seconds": job_seconds, "reducers": n_parts,
+                          "estep_tasks": n_tasks, "estep_threads": used_threads,
                           "shipping": path, "table_entries": n_entries, "new_table_entries": sums[d]["entries"]}
             if sums[d]["pruned"] is not None:
                 metrics[d]["pruned"] = sums[d]["pruned"]

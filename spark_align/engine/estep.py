@@ -73,7 +73,7 @@ def _maybe_fail() -> None:
 
 
 def make_estep(model, directions: tuple[str, ...], tables_src, dense: dict[str, dict], *, blocks_url: str,
-               n_buckets: int, hints_url: str | None = None):
+               n_buckets: int, hints_url: str | None = None, threads: int = 1):
     """The E-step task of the whole-table path: (file, row group) units -> (bucket, payload) records.
 
     Each task reads its row groups of encoded blocks straight from Parquet (pyarrow through fsspec,
@@ -82,109 +82,166 @@ def make_estep(model, directions: tuple[str, ...], tables_src, dense: dict[str, 
     under ``hints_url`` (``engine.hints``; None: no hints) and storing them again if any failed, and
     folds all its blocks' counts into one sum per distinct (dir, src, tgt) before emitting them (see
     ``engine.mstep``).
+
+    ``threads``: the task's units are shared out among this many threads (each takes the next unit
+    when it is done with one), which share the table and fold into accumulators of their own, added
+    together before the task's records are made: one set of records per task whatever the threads.
+    The kernels, the lookup and the folding release the GIL (numba ``nogil``), as pyarrow's reads do.
     """
 
     def estep(units):
         import fsspec
 
-        from spark_align.engine import hints, mstep
-        from spark_align.kernels import lookup
+        from spark_align.engine import mstep
 
         _maybe_fail()
         keep_freed_memory()
         started = time.perf_counter()
-        tables = tables_src.value
+        units = list(units)
+        tables = tables_src.load(max(1, min(threads, len(units))))
         load_seconds = time.perf_counter() - started
         fs, _root = fsspec.core.url_to_fs(blocks_url)
         hints_fs, hints_root = fsspec.core.url_to_fs(hints_url) if hints_url else (None, None)
-        hinted = [d for d in directions if hints_fs is not None and tables[d].constant is None]
-        task = mstep.TaskCounts(tables, reuse=True)
-        lookup_seconds = add_seconds = read_seconds = 0.0
-        searched_total = dict.fromkeys(directions, 0)
-        keys_total = dict.fromkeys(directions, 0)
-        trusted_total = dict.fromkeys(directions, 0)
-        for path, row_group in units:
-            looked_up = time.perf_counter()
-            stored = {d: hints.read(hints_fs, hints_root, d, path, row_group) for d in hinted}
-            trusted = {d for d in hinted if hints_exact_for(stored[d], tables[d])}
-            lookup_seconds += time.perf_counter() - looked_up
-            read_started = time.perf_counter()
-            blocks = read_blocks(fs, path, row_group, with_keys=trusted != set(directions))
-            read_seconds += time.perf_counter() - read_started
-            looked_up = time.perf_counter()
-            sizes = [block.n_dict for block in blocks]
-            n_keys = sum(sizes)
-            gathered = {}  # the probabilities of every key of the unit, per direction taking stored positions
-            for d in sorted(trusted):
-                gathered[d] = lookup.gather_found(tables[d].probs, stored[d].points, stored[d].found, sizes, MIN_PROB)
-                if gathered[d] is None:
-                    trusted.discard(d)  # not what positions of these blocks' keys can be: checked instead
-            for d in hinted:
-                if d not in trusted and stored[d] is not None and len(stored[d].points) != n_keys:
-                    stored[d] = None
-            lookup_seconds += time.perf_counter() - looked_up
-            if trusted != set(directions) and blocks and blocks[0].dict_keys is None:
-                read_started = time.perf_counter()
-                blocks = read_blocks(fs, path, row_group, with_keys=True)
-                read_seconds += time.perf_counter() - read_started
-            new_points = {d: [] for d in hinted if d not in trusted}  # hints to store again, if need be
-            new_found = {d: [] for d in new_points}
-            exact = dict.fromkeys(new_points, True)
-            searched = dict.fromkeys(directions, 0)
-            offset = 0
-            for block, n in zip(blocks, sizes):
-                looked_up = time.perf_counter()
-                found, t_locals, emitted = {}, {}, {}
-                for d in directions:
-                    h = stored.get(d)
-                    if d in trusted:
-                        points, hit = h.points[offset:offset + n], h.found[offset:offset + n]
-                        found[d], emitted[d] = (points, hit), hit
-                        t_locals[d] = gathered[d][offset:offset + n]
-                        continue
-                    # Hints found in other keys (a pruned table, or the first table) are mostly stale:
-                    # the table's hash index finds the keys faster than checking them first.
-                    usable = h is not None and h.keys_id == tables[d].keys_id
-                    found[d], t_locals[d], block_points, block_searched = tables[d].find_hinted(
-                        block.dict_keys, h.points[offset:offset + n] if usable else None)
-                    emitted[d] = emitted_keys(block.dict_keys, d)
-                    searched[d] += block_searched
-                    if d in new_points:
-                        new_points[d].append(block_points)
-                        new_found[d].append(found[d][1])
-                        exact[d] = exact[d] and bool(np.array_equal(found[d][1], emitted[d]))
-                offset += n
-                lookup_seconds += time.perf_counter() - looked_up
-                for result in block_results(model, directions, block, t_locals, dense, emitted):
-                    added = time.perf_counter()
-                    task.add(block.dict_keys, found[DIRS[result[0]]], *result)
-                    add_seconds += time.perf_counter() - added
-            looked_up = time.perf_counter()
-            for d, points in new_points.items():
-                # Stored again when a key was searched for or the table's keys are not the ones the
-                # hints name (so that the next iteration, with the same keys, can take them as they are).
-                if points and (searched[d] or stored[d] is None or stored[d].keys_id != tables[d].keys_id):
-                    hints.write(hints_fs, hints_root, d, path, row_group, lookup.StoredHints(
-                        np.concatenate(points), np.concatenate(new_found[d]), tables[d].keys_id, exact[d]))
-            for d in directions:
-                searched_total[d] += searched[d]
-                keys_total[d] += n_keys
-                trusted_total[d] += n_keys if d in trusted else 0
-            lookup_seconds += time.perf_counter() - looked_up
+        loops = [_UnitLoop(model, directions, tables, dense, fs, hints_fs, hints_root,
+                           mstep.TaskCounts(tables, reuse=True, slot=i)) for i in range(max(1, min(threads, len(units))))]
+        run_shared(loops, units)
+        task = loops[0].task
+        for other in loops[1:]:
+            task.merge(other.task)
         payload_started = time.perf_counter()
         records = list(task.payloads(n_buckets))
         payload_seconds = time.perf_counter() - payload_started
         note_task_memory("broadcast")
         # Scalars 3-11 in records of their own: the task's wall time (reading, table lookups, kernels,
         # folding, preparing its output) and the parts of it named in the module docstring, the same
-        # under every direction, then the direction's lookup counts.
-        values = [time.perf_counter() - started, lookup_seconds, add_seconds, load_seconds, read_seconds,
+        # under every direction, then the direction's lookup counts. With threads, the parts are
+        # summed over them (core seconds) and the wall time is the task's times its threads.
+        values = [(time.perf_counter() - started) * len(loops), sum(lp.lookup_seconds for lp in loops),
+                  sum(lp.add_seconds for lp in loops), load_seconds, sum(lp.read_seconds for lp in loops),
                   payload_seconds]
         yield from records
         yield from timing_payloads(directions, values, n_buckets, {
-            d: [searched_total[d], keys_total[d], trusted_total[d]] for d in directions})
+            d: [sum(lp.searched[d] for lp in loops), sum(lp.keys[d] for lp in loops),
+                sum(lp.trusted[d] for lp in loops)] for d in directions})
 
     return estep
+
+
+def run_shared(loops: list, units: list) -> None:
+    """Run ``loop.run(unit)`` for every unit, each loop in a thread of its own taking the next unit as
+    it finishes one (one loop: in this thread). The first error is raised once every thread stopped."""
+    if len(loops) == 1:
+        for unit in units:
+            loops[0].run(unit)
+        return
+    import threading
+    from concurrent.futures import ThreadPoolExecutor
+
+    pending, lock, failed = iter(units), threading.Lock(), threading.Event()
+
+    def work(loop) -> None:
+        while not failed.is_set():
+            with lock:
+                unit = next(pending, None)
+            if unit is None:
+                return
+            try:
+                loop.run(unit)
+            except BaseException:
+                failed.set()
+                raise
+
+    with ThreadPoolExecutor(len(loops), thread_name_prefix="estep") as pool:
+        for future in [pool.submit(work, loop) for loop in loops]:
+            future.result()
+
+
+class _UnitLoop:
+    """One thread's share of a whole-table E-step task: reads units, looks their blocks up, runs the
+    kernels and folds the counts into its own ``task`` (``engine.mstep.TaskCounts``), timing each part."""
+
+    def __init__(self, model, directions, tables, dense, fs, hints_fs, hints_root, task) -> None:
+        self.model, self.directions, self.tables, self.dense = model, directions, tables, dense
+        self.fs, self.hints_fs, self.hints_root, self.task = fs, hints_fs, hints_root, task
+        self.hinted = [d for d in directions if hints_fs is not None and tables[d].constant is None]
+        self.lookup_seconds = self.add_seconds = self.read_seconds = 0.0
+        self.searched = dict.fromkeys(directions, 0)
+        self.keys = dict.fromkeys(directions, 0)
+        self.trusted = dict.fromkeys(directions, 0)
+
+    def run(self, unit: tuple[str, int]) -> None:
+        from spark_align.engine import hints
+        from spark_align.kernels import lookup
+
+        path, row_group = unit
+        directions, tables, hinted, fs = self.directions, self.tables, self.hinted, self.fs
+        looked_up = time.perf_counter()
+        stored = {d: hints.read(self.hints_fs, self.hints_root, d, path, row_group) for d in hinted}
+        trusted = {d for d in hinted if hints_exact_for(stored[d], tables[d])}
+        self.lookup_seconds += time.perf_counter() - looked_up
+        read_started = time.perf_counter()
+        blocks = read_blocks(fs, path, row_group, with_keys=trusted != set(directions))
+        self.read_seconds += time.perf_counter() - read_started
+        looked_up = time.perf_counter()
+        sizes = [block.n_dict for block in blocks]
+        n_keys = sum(sizes)
+        gathered = {}  # the probabilities of every key of the unit, per direction taking stored positions
+        for d in sorted(trusted):
+            gathered[d] = lookup.gather_found(tables[d].probs, stored[d].points, stored[d].found, sizes, MIN_PROB)
+            if gathered[d] is None:
+                trusted.discard(d)  # not what positions of these blocks' keys can be: checked instead
+        for d in hinted:
+            if d not in trusted and stored[d] is not None and len(stored[d].points) != n_keys:
+                stored[d] = None
+        self.lookup_seconds += time.perf_counter() - looked_up
+        if trusted != set(directions) and blocks and blocks[0].dict_keys is None:
+            read_started = time.perf_counter()
+            blocks = read_blocks(fs, path, row_group, with_keys=True)
+            self.read_seconds += time.perf_counter() - read_started
+        new_points = {d: [] for d in hinted if d not in trusted}  # hints to store again, if need be
+        new_found = {d: [] for d in new_points}
+        exact = dict.fromkeys(new_points, True)
+        searched = dict.fromkeys(directions, 0)
+        offset = 0
+        for block, n in zip(blocks, sizes):
+            looked_up = time.perf_counter()
+            found, t_locals, emitted = {}, {}, {}
+            for d in directions:
+                h = stored.get(d)
+                if d in trusted:
+                    points, hit = h.points[offset:offset + n], h.found[offset:offset + n]
+                    found[d], emitted[d] = (points, hit), hit
+                    t_locals[d] = gathered[d][offset:offset + n]
+                    continue
+                # Hints found in other keys (a pruned table, or the first table) are mostly stale:
+                # the table's hash index finds the keys faster than checking them first.
+                usable = h is not None and h.keys_id == tables[d].keys_id
+                found[d], t_locals[d], block_points, block_searched = tables[d].find_hinted(
+                    block.dict_keys, h.points[offset:offset + n] if usable else None)
+                emitted[d] = emitted_keys(block.dict_keys, d)
+                searched[d] += block_searched
+                if d in new_points:
+                    new_points[d].append(block_points)
+                    new_found[d].append(found[d][1])
+                    exact[d] = exact[d] and bool(np.array_equal(found[d][1], emitted[d]))
+            offset += n
+            self.lookup_seconds += time.perf_counter() - looked_up
+            for result in block_results(self.model, directions, block, t_locals, self.dense, emitted):
+                added = time.perf_counter()
+                self.task.add(block.dict_keys, found[DIRS[result[0]]], *result)
+                self.add_seconds += time.perf_counter() - added
+        looked_up = time.perf_counter()
+        for d, points in new_points.items():
+            # Stored again when a key was searched for or the table's keys are not the ones the
+            # hints name (so that the next iteration, with the same keys, can take them as they are).
+            if points and (searched[d] or stored[d] is None or stored[d].keys_id != tables[d].keys_id):
+                hints.write(self.hints_fs, self.hints_root, d, path, row_group, lookup.StoredHints(
+                    np.concatenate(points), np.concatenate(new_found[d]), tables[d].keys_id, exact[d]))
+        for d in directions:
+            self.searched[d] += searched[d]
+            self.keys[d] += n_keys
+            self.trusted[d] += n_keys if d in trusted else 0
+        self.lookup_seconds += time.perf_counter() - looked_up
 
 
 def timing_payloads(directions: tuple[str, ...], values: list[float], n_buckets: int,

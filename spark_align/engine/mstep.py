@@ -69,13 +69,15 @@ class TaskCounts:
     that has a table, on top of the table itself.
     """
 
-    def __init__(self, tables: dict, *, reuse: bool = False) -> None:
+    def __init__(self, tables: dict, *, reuse: bool = False, slot: int = 0) -> None:
         """``reuse``: start from, and leave behind, the hash table of the Python worker's previous task
         with the same table (``engine.tables.worker_scratch``), as the accumulators are; for the
-        E-step's counts (the first iteration folds every count in it), not for a few scalar rows."""
+        E-step's counts (the first iteration folds every count in it), not for a few scalar rows.
+        ``slot``: which of the worker's spare sets to take and leave (one per thread of a task)."""
         self.tables = tables
         self.reuse = reuse
-        self.buffer = counts.HashCounts(slots=worker_scratch().pop(_SPARE_SLOTS, None) if reuse else None)
+        self.slot = slot
+        self.buffer = counts.HashCounts(slots=worker_scratch().pop((_SPARE_SLOTS, slot), None) if reuse else None)
         self.acc: dict[int, tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
 
     def add(self, dict_keys: np.ndarray, found, d: int, emitted: np.ndarray, values: np.ndarray, other) -> None:
@@ -103,7 +105,7 @@ class TaskCounts:
         if d not in self.acc:
             table = self.tables[DIRS[d]]
             n = len(table.keys)
-            spare = worker_scratch().pop(("spare accumulators", d), None)
+            spare = worker_scratch().pop(("spare accumulators", d, self.slot), None)
             if spare is None or len(spare[1]) != n:
                 spare = (np.zeros((n, 2), np.int64), np.zeros(n, bool))
             self.acc[d] = (*spare, table.keys)
@@ -116,11 +118,21 @@ class TaskCounts:
         for d, (acc, touched, _keys) in self.acc.items():
             acc.fill(0)
             touched.fill(False)
-            worker_scratch()[("spare accumulators", d)] = (acc, touched)
+            worker_scratch()[("spare accumulators", d, self.slot)] = (acc, touched)
         self.acc = {}
         slots = self.buffer.release()
         if self.reuse:
-            worker_scratch()[_SPARE_SLOTS] = slots
+            worker_scratch()[(_SPARE_SLOTS, self.slot)] = slots
+
+    def merge(self, other: "TaskCounts") -> None:
+        """Add ``other``'s counts (over the same tables) into this one; ``other`` is left empty."""
+        for d, (acc, touched, _keys) in other.acc.items():
+            mine = self._acc(d)
+            np.add(mine[0], acc, out=mine[0])
+            np.logical_or(mine[1], touched, out=mine[1])
+        keys, hi, lo = other.buffer.result()
+        self.buffer.add(keys, hi, lo)
+        other._release()
 
     def rows(self) -> list[tuple[np.ndarray, np.ndarray, np.ndarray]]:
         """Every count added so far as (row key, hi, lo) runs of ascending keys: the lexical counts of
@@ -138,7 +150,8 @@ class TaskCounts:
         for bucket, data in payloads(self.buffer, n_buckets):
             by_bucket.setdefault(bucket, []).append(data)
         for d, (acc, touched, table_keys) in sorted(self.acc.items()):
-            # Cost follows the table (sequential passes) and the entries this task touched.
+            # Cost follows the table (sequential passes) and the entries this task touched. Not in
+            # threads, one per direction: that took 0.66 s against 0.44 s in turn (1M pairs, 2 cores).
             for bucket, segment in counts.encode_touched(touched, table_keys, d, n_buckets, acc).items():
                 by_bucket.setdefault(bucket, []).append(segment)
         self._release()

@@ -8,7 +8,7 @@ results must equal, bit for bit, a local-mode run of the same file (the count
 reduction is exact integers, so partitioning and task placement cannot matter).
 
 Processes: one Spark master and two workers (``spark-class`` from the installed
-PySpark, bound to 127.0.0.1, random free ports, 1 core / 1 GB each), each in its
+PySpark, bound to 127.0.0.1, random free ports, 2 cores / 1 GB each), each in its
 own process group, stopped by fixture finalizers whatever the tests do.
 """
 from __future__ import annotations
@@ -26,6 +26,7 @@ import pyspark
 from spark_align.cli import build_parser
 from spark_align.commands.train import config_from_args
 from spark_align.corpus import synthetic
+from spark_align.engine import em
 from spark_align.engine.run import train
 from spark_align.profiles import apply_run_file
 from tests.cluster.procs import free_port, group_alive, start_group, stop_group, wait_http
@@ -54,7 +55,8 @@ symmetrization = "grow-diag-final-and"
 profile = "standalone"
 
 [spark.conf]
-# Fit the test cluster's 1-core / 1 GB workers; the rest comes from the standalone profile.
+# Fit the test cluster's 2-core / 1 GB workers (one core per executor unless a submission asks for two);
+# the rest comes from the standalone profile.
 "spark.executor.memory" = "512m"
 "spark.executor.cores" = 1
 "spark.executor.memoryOverhead" = "384m"
@@ -117,7 +119,7 @@ def standalone(tmp_path_factory, bare_py):
             work_dir.mkdir()
             work_dirs.append(work_dir)
             procs.append(start_group([spark_class, "org.apache.spark.deploy.worker.Worker", "--host", "127.0.0.1",
-                                      "--cores", "1", "--memory", "1g", "--webui-port", "0",
+                                      "--cores", "2", "--memory", "1g", "--webui-port", "0",
                                       "--work-dir", str(work_dir), master],
                                      log_path=str(base / f"worker{i}.log"), env=env, cwd=str(base)))
 
@@ -177,7 +179,9 @@ def runs(request, workspace, standalone, bare_py, package_zip):
         started["local-cluster"] = start_submit(workspace, bare_py, package_zip, "local-cluster[2,1,1024]",
                                                 "local-cluster", "--shipping", "join")
         standalone["ready"]()
-        started["standalone"] = start_submit(workspace, bare_py, package_zip, standalone["master"], "standalone")
+        # two-core executors whose E-step tasks claim both cores and run two threads each
+        started["standalone"] = start_submit(workspace, bare_py, package_zip, standalone["master"], "standalone",
+                                             "--conf", "spark.executor.cores=2", "--conf", f"{em.THREADS_CONF}=2")
         reference = request.getfixturevalue("reference")
         results = {name: finish(*job) for name, job in started.items()}
     finally:
@@ -227,6 +231,9 @@ def test_standalone_cluster_run_equals_local_mode(workspace, runs, standalone):
     code, run_dir, log = runs["standalone"]
     assert code == 0, log[-3000:]
     assert_same_results(run_dir, runs["reference"])
+    # The whole-table E-step ran two threads per task, each task claiming both cores of an executor.
+    first = json.loads(Path(run_dir, checkpoint_dirs(run_dir)[0], "manifest.json").read_text())
+    assert first["metrics"]["forward"]["shipping"] == "broadcast" and first["metrics"]["forward"]["estep_threads"] == 2
     # Both workers ran executors of the application (their work dirs hold the executor logs).
     for work_dir in standalone["work_dirs"]:
         assert list(work_dir.glob("app-*/*/stderr")), f"no executor ran on {work_dir}"

@@ -11,7 +11,7 @@ import pytest
 
 from spark_align.config import CorpusConfig, RunConfig
 from spark_align.corpus import synthetic
-from spark_align.engine import em, ingest, shipping, tables
+from spark_align.engine import em, ingest, mstep, shipping, tables
 from spark_align.engine.run import train
 from spark_align.errors import ConfigError
 from spark_align.kernels import ragged
@@ -299,7 +299,8 @@ def _join_task_payloads(tmp_path, run_dir: str, table, flush_keys: int):
 
 
 @pytest.mark.slow
-def test_join_and_broadcast_shipping_give_bit_identical_tables_and_pruning(spark, tmp_path):
+def test_join_and_broadcast_shipping_give_bit_identical_tables_and_pruning(spark, tmp_path, monkeypatch):
+    monkeypatch.setattr(ingest, "PAIRS_PER_ROW_GROUP", 128)  # two blocks per unit: four units, not one
     generated = synthetic.generate(400, seed=5, src_vocab=300, tgt_vocab=300).select(["source", "target"])
     cfg = config(CorpusConfig(path=write_parquet(tmp_path, generated)), "ibm1:2,hmm:1", block_size=64,
                  shipping="broadcast")
@@ -317,6 +318,19 @@ def test_join_and_broadcast_shipping_give_bit_identical_tables_and_pruning(spark
     finally:
         spark.conf.unset(em.TASKS_PER_CORE_CONF)
     assert sorted(one_per_core) == sorted(want) and all(one_per_core[k].equals(want[k]) for k in want)
+    # Two and three threads per E-step task (local[2]: one task, its units shared out as each thread
+    # is free, one accumulator set per thread, added together): the same tables bit for bit.
+    assert len(mstep.block_units(RunStore(base))) == 4  # units enough for three threads
+    for threads in ("2", "3"):
+        spark.conf.set(em.THREADS_CONF, threads)
+        try:
+            threaded = _retrain(spark, base, str(tmp_path / f"threads-{threads}"), cfg)
+        finally:
+            spark.conf.unset(em.THREADS_CONF)
+        assert sorted(threaded) == sorted(want) and all(threaded[k].equals(want[k]) for k in want), threads
+    threaded = manifest(str(tmp_path / "threads-3"), "00-ibm1", 2)["metrics"]["forward"]
+    assert (threaded["estep_threads"], threaded["estep_tasks"]) == (3, 1)
+    assert manifest(base_broadcast, "00-ibm1", 2)["metrics"]["forward"]["estep_tasks"] == 4
     with pytest.raises(ConfigError, match="estepTasksPerCore must be a whole number"):
         em.tasks_per_core("0")
     with pytest.raises(ConfigError, match="estepTasksPerCore must be a whole number"):
