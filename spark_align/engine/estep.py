@@ -12,8 +12,9 @@ with the entries its units need, received through the join. Rows are
 * ``src == -1``: entry ``tgt`` of the model's dense statistics vector;
 * ``src == -2``: scalars (``tgt == 0``: log-likelihood; ``tgt == 1``: seconds spent in the
   model kernel, for the share-outside-the-kernel figure; ``tgt == 2``: links processed;
-  per task: ``tgt == 3`` task seconds, of which ``tgt == 4`` finding the blocks' entries in the
-  table (the lookup), ``5`` adding counts into the task's accumulators, ``6`` loading the table
+  per task: ``tgt == 3`` task seconds (times its threads: core seconds), of which ``tgt == 4``
+  finding the blocks' entries in the table (the lookup), ``5`` adding counts into the task's
+  accumulators (``4``, ``5`` and ``7`` summed over threads), ``6`` loading the table
   (first task of a Python worker per iteration), ``7`` reading blocks and ``8`` preparing the
   task's output records (the join path's tasks leave 6 at zero); whole-table path only, per
   direction: ``9`` dictionary keys the lookup had to search for (no usable stored hint,
