@@ -130,7 +130,8 @@ def make_estep(model, directions: tuple[str, ...], tables_src, dense: dict[str, 
 
 def run_shared(loops: list, units: list) -> None:
     """Run ``loop.run(unit)`` for every unit, each loop in a thread of its own taking the next unit as
-    it finishes one (one loop: in this thread). The first error is raised once every thread stopped."""
+    it finishes one (one loop: in this thread). When a loop raises, the others take no more units, and
+    the error is raised once every thread has stopped."""
     if len(loops) == 1:
         for unit in units:
             loops[0].run(unit)

@@ -29,6 +29,7 @@ table through :class:`TableSource` too.
 from __future__ import annotations
 
 import posixpath
+import threading
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -37,6 +38,9 @@ from spark_align.kernels import ragged
 
 DIRS = ("forward", "reverse")
 MIN_PROB = 1e-12  # floor applied after each M-step (common practice, no source)
+
+
+_INDEX_LOCK = threading.Lock()
 
 
 @dataclass(frozen=True)
@@ -81,8 +85,9 @@ class DirectionTable:
         index = None
         worth_it = 64 * len(dict_keys) >= len(self.keys) and len(self.keys) < lookup.MAX_INDEXED
         if hints is None and (self._index or worth_it):
-            if not self._index:
-                self._index["slots"] = lookup.key_index(self.keys)
+            with _INDEX_LOCK:  # the threads of an E-step task share the table: one index, built once
+                if not self._index:
+                    self._index["slots"] = lookup.key_index(self.keys)
             index = self._index["slots"]
         pos, hit, probs, points, searched = lookup.find_hinted(self.keys, self.probs, dict_keys, MIN_PROB, hints,
                                                                index)
