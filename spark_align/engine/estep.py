@@ -99,12 +99,13 @@ def make_estep(model, directions: tuple[str, ...], tables_src, dense: dict[str, 
         keep_freed_memory()
         started = time.perf_counter()
         units = list(units)
-        tables = tables_src.load(max(1, min(threads, len(units))))
+        n_threads = max(1, min(threads, len(units)))
+        tables = tables_src.load(n_threads)
         load_seconds = time.perf_counter() - started
         fs, _root = fsspec.core.url_to_fs(blocks_url)
         hints_fs, hints_root = fsspec.core.url_to_fs(hints_url) if hints_url else (None, None)
         loops = [_UnitLoop(model, directions, tables, dense, fs, hints_fs, hints_root,
-                           mstep.TaskCounts(tables, reuse=True, slot=i)) for i in range(max(1, min(threads, len(units))))]
+                           mstep.TaskCounts(tables, reuse=True, slot=i)) for i in range(n_threads)]
         run_shared(loops, units)
         task = loops[0].task
         for other in loops[1:]:
