@@ -206,7 +206,7 @@ class Trainer:
             flush_keys = whole_number_setting(shipping.TASK_KEYS_CONF, self.spark.conf.get(
                 shipping.TASK_KEYS_CONF, str(shipping.TASK_KEYS)))
             route_seconds = sc.accumulator(0.0)
-            used_threads = 1
+            used_threads, own_table = 1, False
             pairs = shipping.join_payloads(self.spark, self.store, units, state.table_path, model, self.directions,
                                            state.dense, n_tasks=n_tasks, n_buckets=n_parts, flush_keys=flush_keys,
                                            lookup_seconds=route_seconds)
@@ -217,9 +217,15 @@ class Trainer:
             local = local_cores(sc.master)
             cores = local if local is not None and threads > 1 else sc.defaultParallelism
             n_tasks = estep_tasks(len(units), cores, per_core, threads, local=local is not None)
+            # One E-step task (one unit, or local mode with as many threads as cores): its counts are the
+            # totals, so it writes the table itself and nothing is shuffled.
+            own_table = n_tasks == 1
             estep = make_estep(model, self.directions, source, state.dense,
                                blocks_url=fsspec_url(self.store.spark_path("encoded", "blocks")), n_buckets=n_parts,
-                               hints_url=fsspec_url(self.store.spark_path("encoded", "hints")), threads=threads)
+                               hints_url=fsspec_url(self.store.spark_path("encoded", "hints")), threads=threads,
+                               write_table=dict(lex_url=fsspec_url(self.store.spark_path(rel, "lex")),
+                                                min_prob=tables_mod.MIN_PROB, prune_below=self.cfg.prune_below)
+                               if own_table else None)
             tasks = sc.parallelize(units, n_tasks)
             if threads > 1 and local is None:
                 tasks = claim_task_cpus(self.spark, tasks, threads)
@@ -229,9 +235,12 @@ class Trainer:
         with faults.arm_task_kill(self.spark, "estep", stage.model, state.iteration + 1), \
                 faults.kill_during_write("mstep-write", stage.model, state.iteration + 1,
                                          self.store.spark_path(rel, "lex")):
-            summaries = mstep.reduce_and_write(
-                sc, pairs, n_parts, fsspec_url(self.store.spark_path(rel, "lex")), min_prob=tables_mod.MIN_PROB,
-                prune_below=self.cfg.prune_below)
+            if own_table:
+                summaries = pairs.collect()
+            else:
+                summaries = mstep.reduce_and_write(
+                    sc, pairs, n_parts, fsspec_url(self.store.spark_path(rel, "lex")), min_prob=tables_mod.MIN_PROB,
+                    prune_below=self.cfg.prune_below)
         job_seconds = time.perf_counter() - started
         self.store.remove(rel, "lex", "_temporary")
         # what the reducers wrote, so that committing does not read the table back for its checksums
@@ -263,6 +272,8 @@ class Trainer:
                           "route_lookup_seconds": float(route_seconds.value) if route_seconds is not None else 0.0,
                           "job_seconds": job_seconds, "reducers": n_parts,
                           "estep_tasks": n_tasks, "estep_threads": used_threads,
+                          # who normalised and wrote the table: the reducers, or the one E-step task
+                          "mstep_by": "estep task" if own_table else "reducers",
                           "shipping": path, "table_entries": n_entries, "new_table_entries": sums[d]["entries"]}
             if sums[d]["pruned"] is not None:
                 metrics[d]["pruned"] = sums[d]["pruned"]

@@ -74,7 +74,7 @@ def _maybe_fail() -> None:
 
 
 def make_estep(model, directions: tuple[str, ...], tables_src, dense: dict[str, dict], *, blocks_url: str,
-               n_buckets: int, hints_url: str | None = None, threads: int = 1):
+               n_buckets: int, hints_url: str | None = None, threads: int = 1, write_table: dict | None = None):
     """The E-step task of the whole-table path: (file, row group) units -> (bucket, payload) records.
 
     Each task reads its row groups of encoded blocks straight from Parquet (pyarrow through fsspec,
@@ -88,6 +88,11 @@ def make_estep(model, directions: tuple[str, ...], tables_src, dense: dict[str, 
     when it is done with one), which share the table and fold into accumulators of their own, added
     together before the task's records are made: one set of records per task whatever the threads.
     The kernels, the lookup and the folding release the GIL (numba ``nogil``), as pyarrow's reads do.
+
+    ``write_table``: for an iteration whose E-step is this one task, whose counts are then the totals:
+    the keyword arguments of ``engine.mstep.write_task_table`` but the first two. The task then does
+    the M-step itself, writing the table's ``n_buckets`` files as the reducers would (the same bytes)
+    and yielding their summaries instead of records to shuffle.
     """
 
     def estep(units):
@@ -111,7 +116,7 @@ def make_estep(model, directions: tuple[str, ...], tables_src, dense: dict[str, 
         for other in loops[1:]:
             task.merge(other.task)
         payload_started = time.perf_counter()
-        records = list(task.payloads(n_buckets))
+        records = [] if write_table is not None else list(task.payloads(n_buckets))
         payload_seconds = time.perf_counter() - payload_started
         note_task_memory("broadcast")
         # Scalars 3-11 in records of their own: the task's wall time (reading, table lookups, kernels,
@@ -121,10 +126,14 @@ def make_estep(model, directions: tuple[str, ...], tables_src, dense: dict[str, 
         values = [(time.perf_counter() - started) * len(loops), sum(lp.lookup_seconds for lp in loops),
                   sum(lp.add_seconds for lp in loops), load_seconds, sum(lp.read_seconds for lp in loops),
                   payload_seconds]
-        yield from records
-        yield from timing_payloads(directions, values, n_buckets, {
-            d: [sum(lp.searched[d] for lp in loops), sum(lp.keys[d] for lp in loops),
-                sum(lp.trusted[d] for lp in loops)] for d in directions})
+        per_direction = {d: [sum(lp.searched[d] for lp in loops), sum(lp.keys[d] for lp in loops),
+                             sum(lp.trusted[d] for lp in loops)] for d in directions}
+        if write_table is None:
+            yield from records
+            yield from timing_payloads(directions, values, n_buckets, per_direction)
+            return
+        add_timing(task, directions, values, per_direction)
+        yield from mstep.write_task_table(task, n_buckets, threads=len(loops), **write_table)
 
     return estep
 
@@ -254,11 +263,18 @@ def timing_payloads(directions: tuple[str, ...], values: list[float], n_buckets:
     from spark_align.engine import mstep
 
     timing = mstep.TaskCounts({})
+    add_timing(timing, directions, values, per_direction)
+    return timing.payloads(n_buckets)
+
+
+def add_timing(task, directions: tuple[str, ...], values: list[float],
+               per_direction: dict[str, list[float]] | None = None) -> None:
+    """Add a task's scalars 3, 4, ... to ``task`` (an ``engine.mstep.TaskCounts``): ``values`` under every
+    direction, then that direction's ``per_direction`` values (module docstring)."""
     for direction in directions:
         row = np.array(values + (per_direction or {}).get(direction, []), np.float64)
-        timing.add_rows(DIRS.index(direction), np.full(len(row), SCALAR, np.int32),
-                        np.arange(3, 3 + len(row), dtype=np.int32), row)
-    return timing.payloads(n_buckets)
+        task.add_rows(DIRS.index(direction), np.full(len(row), SCALAR, np.int32),
+                      np.arange(3, 3 + len(row), dtype=np.int32), row)
 
 
 E_STEP_COLUMNS = ["block_id", "src_len", "src_ids", "tgt_len", "tgt_ids", "dict_keys", "grid"]

@@ -36,7 +36,7 @@ from fsspec.implementations.local import LocalFileSystem
 
 from spark_align.engine.estep import DENSE, HI_SCALE, LO_SCALE, SCALAR, note_task_memory, to_fixed
 from spark_align.engine.tables import (BUCKET_META, BUCKETS_META, DIRS, KEYS_META, keep_freed_memory, keys_digest,
-                                       worker_scratch)
+                                       map_threads, worker_scratch)
 from spark_align.kernels import counts
 from spark_align.store import ensure_parent
 
@@ -158,6 +158,27 @@ class TaskCounts:
         for bucket in sorted(by_bucket):
             yield bucket, b"".join(by_bucket[bucket])
 
+    def bucket_rows(self, n_buckets: int) -> list[tuple[np.ndarray, np.ndarray, np.ndarray]]:
+        """Every count added so far summed per key and grouped by reducer bucket: item ``b`` holds
+        bucket ``b``'s (keys ascending and distinct, hi, lo), what a reducer that received only this
+        task's :meth:`payloads` would fold (``counts.buckets_of``). Afterwards the accumulators are
+        empty again."""
+        keys, hi, lo = self.buffer.result()
+        buckets = counts.buckets_of(keys, n_buckets)
+        # a stable sort of small integers is a radix sort in numpy (the first iteration's counts all
+        # come through the buffer)
+        order = np.argsort(buckets.astype(np.uint16) if n_buckets <= 1 << 16 else buckets, kind="stable")
+        starts = np.searchsorted(buckets[order], np.arange(n_buckets + 1))
+        grouped = [(starts, keys[order], hi[order], lo[order])]
+        for d, (acc, touched, table_keys) in sorted(self.acc.items()):
+            grouped.append(counts.touched_by_bucket(touched, table_keys, d, n_buckets, acc))
+        self._release()
+        out = []
+        for b in range(n_buckets):
+            runs = [tuple(a[s[b]:s[b + 1]] for a in rest) for s, *rest in grouped]
+            out.append(counts.reduce_sorted(*(np.concatenate(parts) for parts in zip(*runs))))
+        return out
+
 
 def part_name(index: int) -> str:
     return f"part-{index:05d}.parquet"
@@ -181,54 +202,85 @@ def make_reducer(lex_url: str, n_parts: int, *, min_prob: float, prune_below: fl
     """
 
     def reduce(index, records):
-        import fsspec
-
         keep_freed_memory()
         started = time.perf_counter()
         buffer = counts.CountBuffer(compact_rows=REDUCER_FOLD_ROWS)
         for _bucket, data in records:
             buffer.add_payload(data)
-        keys, hi, lo = buffer.result()
-        summary = {"part": index, "dense": {}, "scalar": {}, "entries": {}, "pruned": {}}
-        special = np.flatnonzero(((keys >> 32) & np.int64(2 ** 30 - 1)) < 2)  # src < 0: dense, scalars
-        dirs, src, tgt = counts.split_keys(keys[special])
-        for kind, code in (("dense", DENSE), ("scalar", SCALAR)):
-            for k in np.flatnonzero(src == code):
-                summary[kind][(int(dirs[k]), int(tgt[k]))] = (int(hi[special[k]]), int(lo[special[k]]))
-        t_dir, t_src, t_tgt, prob = counts.normalise(keys, hi, lo, hi_scale=HI_SCALE, lo_scale=LO_SCALE,
-                                                     min_prob=min_prob)
-        if prune_below is not None:
-            below = prob < prune_below
-            for d in np.unique(t_dir):
-                sel = t_dir == d
-                summary["pruned"][int(d)] = (int(np.count_nonzero(below & sel)), float(prob[below & sel].sum()))
-            keep = ~below
-            t_dir, t_src, t_tgt, prob = t_dir[keep], t_src[keep], t_tgt[keep], prob[keep]
-        for d, n_d in enumerate(np.bincount(t_dir, minlength=len(DIRS))):
-            if n_d:
-                summary["entries"][d] = int(n_d)
-        schema = TABLE_SCHEMA.with_metadata({BUCKET_META: str(index), BUCKETS_META: str(n_parts),
-                                             KEYS_META: keys_digest(t_dir, t_src, t_tgt)})
-        table = pa.Table.from_arrays([pa.array(t_dir), pa.array(t_src), pa.array(t_tgt), pa.array(prob)],
-                                     schema=schema)
-        fs, root = fsspec.core.url_to_fs(lex_url)
-        tmp = posixpath.join(root, "_temporary", f"{part_name(index)}.{uuid.uuid4().hex}")
-        ensure_parent(fs, tmp)
-        # No dictionary pages (probabilities never repeat enough) and LZ4 (raw) pages: 0.14 s against
-        # 0.24 s to write 4.7M entries with the defaults, and as fast to read. The file's CRC-32 (for the
-        # manifest) is taken from the bytes as they are written, not by reading them back on the driver;
-        # streamed, not first written to memory (3.9M entries: 0.07 s against 0.09-0.37 s, the high
-        # figure a fresh 34 MB buffer's page faults).
-        with fs.open(tmp, "wb") as fh:
-            sink = CrcWriter(fh)
-            pq.write_table(table, sink, use_dictionary=False, compression="lz4_raw")
-        summary["crc32"] = f"{sink.crc:08x}"
-        fs.mv(tmp, posixpath.join(root, part_name(index)))
+        summary = write_bucket(lex_url, n_parts, index, *buffer.result(), min_prob=min_prob, prune_below=prune_below)
         summary["seconds"] = time.perf_counter() - started
         note_task_memory("reduce")
         yield summary
 
     return reduce
+
+
+def write_bucket(lex_url: str, n_parts: int, index: int, keys: np.ndarray, hi: np.ndarray, lo: np.ndarray, *,
+                 min_prob: float, prune_below: float | None) -> dict:
+    """The M-step of bucket ``index``: its rows summed (keys ascending and distinct, as a reducer's fold
+    gives them) -> its table file, written under ``lex_url``; returns its small summary (see
+    :func:`make_reducer`) without ``seconds``."""
+    import fsspec
+
+    summary = {"part": index, "dense": {}, "scalar": {}, "entries": {}, "pruned": {}}
+    special = np.flatnonzero(((keys >> 32) & np.int64(2 ** 30 - 1)) < 2)  # src < 0: dense, scalars
+    dirs, src, tgt = counts.split_keys(keys[special])
+    for kind, code in (("dense", DENSE), ("scalar", SCALAR)):
+        for k in np.flatnonzero(src == code):
+            summary[kind][(int(dirs[k]), int(tgt[k]))] = (int(hi[special[k]]), int(lo[special[k]]))
+    t_dir, t_src, t_tgt, prob = counts.normalise(keys, hi, lo, hi_scale=HI_SCALE, lo_scale=LO_SCALE,
+                                                 min_prob=min_prob)
+    if prune_below is not None:
+        below = prob < prune_below
+        for d in np.unique(t_dir):
+            sel = t_dir == d
+            summary["pruned"][int(d)] = (int(np.count_nonzero(below & sel)), float(prob[below & sel].sum()))
+        keep = ~below
+        t_dir, t_src, t_tgt, prob = t_dir[keep], t_src[keep], t_tgt[keep], prob[keep]
+    for d, n_d in enumerate(np.bincount(t_dir, minlength=len(DIRS))):
+        if n_d:
+            summary["entries"][d] = int(n_d)
+    schema = TABLE_SCHEMA.with_metadata({BUCKET_META: str(index), BUCKETS_META: str(n_parts),
+                                         KEYS_META: keys_digest(t_dir, t_src, t_tgt)})
+    table = pa.Table.from_arrays([pa.array(t_dir), pa.array(t_src), pa.array(t_tgt), pa.array(prob)],
+                                 schema=schema)
+    fs, root = fsspec.core.url_to_fs(lex_url)
+    tmp = posixpath.join(root, "_temporary", f"{part_name(index)}.{uuid.uuid4().hex}")
+    ensure_parent(fs, tmp)
+    # No dictionary pages (probabilities never repeat enough) and LZ4 (raw) pages: 0.14 s against
+    # 0.24 s to write 4.7M entries with the defaults, and as fast to read. The file's CRC-32 (for the
+    # manifest) is taken from the bytes as they are written, not by reading them back on the driver;
+    # streamed, not first written to memory (3.9M entries: 0.07 s against 0.09-0.37 s, the high
+    # figure a fresh 34 MB buffer's page faults).
+    with fs.open(tmp, "wb") as fh:
+        sink = CrcWriter(fh)
+        pq.write_table(table, sink, use_dictionary=False, compression="lz4_raw")
+    summary["crc32"] = f"{sink.crc:08x}"
+    fs.mv(tmp, posixpath.join(root, part_name(index)))
+    return summary
+
+
+def write_task_table(task: TaskCounts, n_parts: int, *, threads: int, lex_url: str, min_prob: float,
+                     prune_below: float | None) -> list[dict]:
+    """The M-step done by an iteration's only E-step task (``engine.estep.make_estep``'s ``write_table``):
+    its counts are the totals, so it writes the ``n_parts`` bucket files itself, ``threads`` at a time,
+    as the reducers would from its records, with nothing shuffled. Returns the reducers' summaries; the
+    first one's ``seconds`` includes grouping the counts by bucket."""
+    started = time.perf_counter()
+    rows: list = task.bucket_rows(n_parts)
+    grouped = time.perf_counter() - started
+
+    def write(index: int) -> dict:
+        began = time.perf_counter()
+        summary = write_bucket(lex_url, n_parts, index, *rows[index], min_prob=min_prob, prune_below=prune_below)
+        rows[index] = None  # freed as soon as written
+        summary["seconds"] = time.perf_counter() - began
+        return summary
+
+    summaries = map_threads(write, list(range(n_parts)), threads)
+    summaries[0]["seconds"] += grouped
+    note_task_memory("reduce")
+    return summaries
 
 
 class CrcWriter:

@@ -331,6 +331,12 @@ def test_join_and_broadcast_shipping_give_bit_identical_tables_and_pruning(spark
     threaded = manifest(str(tmp_path / "threads-3"), "00-ibm1", 2)["metrics"]["forward"]
     assert (threaded["estep_threads"], threaded["estep_tasks"]) == (3, 1)
     assert manifest(base_broadcast, "00-ibm1", 2)["metrics"]["forward"]["estep_tasks"] == 4
+    # That one task wrote the table itself (nothing shuffled): the reducers' files, byte for byte.
+    assert threaded["mstep_by"] == "estep task"
+    assert manifest(base_broadcast, "00-ibm1", 2)["metrics"]["forward"]["mstep_by"] == "reducers"
+    for stage, iteration in (("00-ibm1", 1), ("00-ibm1", 2), ("01-hmm", 1)):
+        assert (manifest(str(tmp_path / "threads-3"), stage, iteration)["table"]["crc32"]
+                == manifest(base_broadcast, stage, iteration)["table"]["crc32"])
     with pytest.raises(ConfigError, match="estepTasksPerCore must be a whole number"):
         em.tasks_per_core("0")
     with pytest.raises(ConfigError, match="estepTasksPerCore must be a whole number"):

@@ -162,6 +162,7 @@ def test_table_aligned_task_counts_equal_the_plain_buffer():
             "reverse": DirectionTable(table_keys[::2].copy(), rng.random(len(table_keys[::2])))}
     task, plain = mstep.TaskCounts(tabs), counts.CountBuffer()
     as_rows, drained = mstep.TaskCounts(tabs), counts.CountBuffer()  # the same counts, taken as sorted runs
+    by_bucket = mstep.TaskCounts(tabs)  # the same counts, grouped by bucket for the task's own M-step
     for step in range(6):
         dict_keys = np.unique((rng.integers(0, 45, 300).astype(np.int64) << 32) | rng.integers(0, 45, 300))
         for d, name in enumerate(("forward", "reverse")):
@@ -169,6 +170,7 @@ def test_table_aligned_task_counts_equal_the_plain_buffer():
             values = rng.random(len(dict_keys)) * 3
             other = (np.array([-1, -2], np.int32), np.array([d + 3, 0], np.int32), np.array([0.5, -7.0]))
             task.add(dict_keys, tabs[name].positions(dict_keys), d, emitted, values, other)
+            by_bucket.add(dict_keys, tabs[name].positions(dict_keys), d, emitted, values, other)
             as_rows.add(dict_keys, tabs[name].positions(dict_keys), d, emitted, values, other)
             src, tgt = dict_keys[emitted] >> 32, dict_keys[emitted] & 0xFFFFFFFF
             all_src = np.concatenate([src, other[0]])
@@ -180,7 +182,18 @@ def test_table_aligned_task_counts_equal_the_plain_buffer():
                 assert np.all(np.diff(run[0]) > 0)
                 drained.add(*run)
             assert all(len(run[0]) == 0 for run in as_rows.rows())
-    got = [counts.decode_rows(data) for _, data in task.payloads(3)]
+    records = list(task.payloads(3))
+    # what a reducer folds from the task's records of its bucket, the task's own M-step has at hand
+    grouped = by_bucket.bucket_rows(3)
+    assert len(grouped) == 3 and sorted(bucket for bucket, _ in records) == [0, 1, 2]
+    for bucket, data in records:
+        reducer = counts.CountBuffer()
+        reducer.add_payload(data)
+        for g, w in zip(grouped[bucket], reducer.result()):
+            np.testing.assert_array_equal(g, w)
+        assert np.all(counts.buckets_of(grouped[bucket][0], 3) == bucket)
+    assert all(len(run[0]) == 0 for run in by_bucket.rows())  # emptied
+    got = [counts.decode_rows(data) for _, data in records]
     k, a, b = (np.concatenate(x) for x in zip(*got))
     order = np.argsort(k)
     keys, h, lo_sum = plain.result()
