@@ -6,6 +6,11 @@ counts, keyed by conditioning word, reaches reducer tasks that sum them
 exactly, normalise and write the new table (``engine.mstep``); a JSON
 manifest is written last (the commit). The driver plans the job and collects
 small sums (dense statistics, log-likelihood); it never holds the table.
+
+An iteration whose whole-table E-step is a single task (a corpus of one unit,
+or local mode with as many ``estepThreads`` as cores) has that task's counts
+as its totals: the task then normalises and writes the table itself, the same
+files the reducers would write, and nothing is shuffled.
 """
 from __future__ import annotations
 
@@ -183,7 +188,8 @@ class Trainer:
         """One EM iteration from ``state``; returns (table path, new dense, metrics).
 
         E-step tasks fold their counts and ship them by reducer bucket; reducers normalise and
-        write the new table themselves (``engine.mstep``). The driver only plans and collects sums.
+        write the new table themselves (``engine.mstep``), or, with one E-step task, that task does
+        (module docstring). The driver only plans and collects sums.
         """
         sc = self.spark.sparkContext
         src_v, tgt_v = self.encoded["src_vocab_size"], self.encoded["tgt_vocab_size"]

@@ -18,6 +18,10 @@ Per iteration:
    a whole file with the same bytes. It returns only small sums to the driver:
    dense statistics, scalars, entry counts and what pruning removed.
 
+An iteration whose E-step is one task skips 2 and 3's shuffle: that task
+groups its sums by bucket and writes every bucket's file itself
+(:func:`write_task_table`), the same bytes as the reducers.
+
 Nothing table-sized passes through the JVM's SQL engine or the driver. The
 number of reducers is ``spark.sql.shuffle.partitions``; results do not depend
 on it (integer sums), only the number of files does.
@@ -158,26 +162,23 @@ class TaskCounts:
         for bucket in sorted(by_bucket):
             yield bucket, b"".join(by_bucket[bucket])
 
-    def bucket_rows(self, n_buckets: int) -> list[tuple[np.ndarray, np.ndarray, np.ndarray]]:
-        """Every count added so far summed per key and grouped by reducer bucket: item ``b`` holds
-        bucket ``b``'s (keys ascending and distinct, hi, lo), what a reducer that received only this
-        task's :meth:`payloads` would fold (``counts.buckets_of``). Afterwards the accumulators are
-        empty again."""
+    def bucket_runs(self, n_buckets: int, threads: int = 1) -> list[tuple]:
+        """Every count added so far, grouped by reducer bucket (``counts.buckets_of``) for
+        :func:`bucket_sums`: ``(starts, keys, hi, lo)`` runs, one from the buffer and one per direction's
+        accumulators (those on ``threads`` threads), bucket ``b``'s rows of a run at
+        ``starts[b]:starts[b + 1]``, keys ascending. Afterwards the accumulators are empty again."""
         keys, hi, lo = self.buffer.result()
         buckets = counts.buckets_of(keys, n_buckets)
         # a stable sort of small integers is a radix sort in numpy (the first iteration's counts all
         # come through the buffer)
         order = np.argsort(buckets.astype(np.uint16) if n_buckets <= 1 << 16 else buckets, kind="stable")
         starts = np.searchsorted(buckets[order], np.arange(n_buckets + 1))
-        grouped = [(starts, keys[order], hi[order], lo[order])]
-        for d, (acc, touched, table_keys) in sorted(self.acc.items()):
-            grouped.append(counts.touched_by_bucket(touched, table_keys, d, n_buckets, acc))
+        runs = [(starts, keys[order], hi[order], lo[order])]
+        runs += map_threads(lambda item: counts.touched_by_bucket(item[1][1], item[1][2], item[0], n_buckets,
+                                                                  item[1][0]),
+                            sorted(self.acc.items()), threads)
         self._release()
-        out = []
-        for b in range(n_buckets):
-            runs = [tuple(a[s[b]:s[b + 1]] for a in rest) for s, *rest in grouped]
-            out.append(counts.reduce_sorted(*(np.concatenate(parts) for parts in zip(*runs))))
-        return out
+        return runs
 
 
 def part_name(index: int) -> str:
@@ -260,20 +261,28 @@ def write_bucket(lex_url: str, n_parts: int, index: int, keys: np.ndarray, hi: n
     return summary
 
 
+def bucket_sums(runs: list[tuple], bucket: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Bucket ``bucket``'s rows of :meth:`TaskCounts.bucket_runs`, summed per key: (keys ascending and
+    distinct, hi, lo), what a reducer that received only that task's :meth:`TaskCounts.payloads` folds."""
+    parts = [tuple(a[starts[bucket]:starts[bucket + 1]] for a in arrays) for starts, *arrays in runs]
+    return counts.reduce_sorted(*(np.concatenate(column) for column in zip(*parts)))
+
+
 def write_task_table(task: TaskCounts, n_parts: int, *, threads: int, lex_url: str, min_prob: float,
                      prune_below: float | None) -> list[dict]:
     """The M-step done by an iteration's only E-step task (``engine.estep.make_estep``'s ``write_table``):
     its counts are the totals, so it writes the ``n_parts`` bucket files itself, ``threads`` at a time,
-    as the reducers would from its records, with nothing shuffled. Returns the reducers' summaries; the
+    as the reducers would from its records, with nothing shuffled. Memory: the task's rows twice at
+    most (grouped by bucket, then one bucket's sums per thread). Returns the reducers' summaries; the
     first one's ``seconds`` includes grouping the counts by bucket."""
     started = time.perf_counter()
-    rows: list = task.bucket_rows(n_parts)
+    runs = task.bucket_runs(n_parts, threads)
     grouped = time.perf_counter() - started
 
     def write(index: int) -> dict:
         began = time.perf_counter()
-        summary = write_bucket(lex_url, n_parts, index, *rows[index], min_prob=min_prob, prune_below=prune_below)
-        rows[index] = None  # freed as soon as written
+        summary = write_bucket(lex_url, n_parts, index, *bucket_sums(runs, index), min_prob=min_prob,
+                               prune_below=prune_below)
         summary["seconds"] = time.perf_counter() - began
         return summary
 
