@@ -140,13 +140,17 @@ class TableSource:
         key = (self.url, self.directions, self.vocab_sizes, self.token)
         if key not in _WORKER_CACHE:
             previous = _WORKER_CACHE.pop(_LAYOUT, None)
+            scratch = _WORKER_CACHE.pop(_SCRATCH, None)
             _WORKER_CACHE.clear()  # free the previous table before reading the next
             if self.url is None:
+                scratch = None
                 _WORKER_CACHE[key] = uniform_tables(self.directions, *self.vocab_sizes)
             else:
                 layout = TableLayout.read(self.url)
                 if previous is not None and not previous.same_keys(layout, self.directions):
-                    previous = None  # free the previous keys before reading new ones
+                    previous = scratch = None  # free the previous keys and scratch before reading new ones
+                if scratch:  # the same keys: arrays of the same sizes, kept rather than touched afresh
+                    _WORKER_CACHE[_SCRATCH] = scratch
                 _WORKER_CACHE[key] = read_worker_tables(self.url, self.directions, layout=layout,
                                                         previous=previous, threads=threads)
                 _WORKER_CACHE[_LAYOUT] = layout
@@ -157,8 +161,10 @@ class TableSource:
 
 
 def worker_scratch() -> dict:
-    """Arrays a Python worker keeps between tasks for as long as it keeps its current table (freed
-    with it when the next table is read, so they never outlive it)."""
+    """Arrays a Python worker keeps between tasks for as long as it keeps its current table, and for
+    the next table if that has the same keys (sized by them). Freed before a table with other keys is
+    read, so they never outlive the keys they were sized for. Memory allocated afresh costs its first
+    touch (page faults): the E-step's accumulators at 1M pairs are half a GB per thread."""
     return _WORKER_CACHE.setdefault(_SCRATCH, {})
 
 

@@ -227,11 +227,16 @@ def test_a_table_with_the_same_keys_is_read_as_probabilities_only(tmp_path):
     for d in dirs_:
         assert np.array_equal(got[d].keys, whole[d].keys) and np.array_equal(got[d].probs, whole[d].probs)
         assert not np.array_equal(got[d].probs, tables.read_worker_tables(first, dirs_)[d].probs)
-    # Through TableSource, as E-step tasks see it: the second read reuses the first's keys.
+    # Through TableSource, as E-step tasks see it: the second read reuses the first's keys, and the
+    # arrays the worker kept for the first table's keys (accumulators) are kept for it; a table with
+    # other keys frees them.
     one = tables.TableSource(first, dirs_, (300, 250), "t1").value
+    tables.worker_scratch()["sized by keys"] = spare = np.zeros(len(one["forward"].keys))
     two = tables.TableSource(second, dirs_, (300, 250), "t2").value
     assert two["forward"].keys is one["forward"].keys
+    assert tables.worker_scratch()["sized by keys"] is spare
     three = tables.TableSource(fewer, dirs_, (300, 250), "t3").value
+    assert "sized by keys" not in tables.worker_scratch()
     want = tables.tables_from_arrow(tables.read_table_arrow(fewer), dirs_)
     for d in dirs_:
         assert np.array_equal(three[d].keys, want[d].keys) and np.array_equal(three[d].probs, want[d].probs)
