@@ -29,7 +29,8 @@ core time:
   accumulators), ``table load`` (each Python worker reading the table), ``block reads``,
   ``output records`` (grouping and compressing a task's counts for the shuffle), ``other E-step``
   (the rest of the E-step tasks' wall time: block views, the reverse grid, Python),
-  ``reducers`` (summing, normalising and writing the table), ``join lookup tasks`` (the join path's
+  ``reducers`` (summing, normalising and writing the table; with one E-step task, that task's
+  own M-step after its E-step), ``join lookup tasks`` (the join path's
   tasks that read a table bucket and its routes and find each unit's entries; not handing them to
   Spark) and ``rest`` (Spark scheduling and shuffle, the join path's sort of routed entries, the driver,
   and idle cores; ``driver``: the part of it between the iteration's Spark jobs,

@@ -83,6 +83,7 @@ class TaskCounts:
         self.slot = slot
         self.buffer = counts.HashCounts(slots=worker_scratch().pop((_SPARE_SLOTS, slot), None) if reuse else None)
         self.acc: dict[int, tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
+        self._buffered: tuple | None = None  # the buffer's rows grouped by bucket (bucket_sums)
 
     def add(self, dict_keys: np.ndarray, found, d: int, emitted: np.ndarray, values: np.ndarray, other) -> None:
         """One block's result for direction ``d`` (``engine.estep.block_results``); ``found`` = the
@@ -162,23 +163,28 @@ class TaskCounts:
         for bucket in sorted(by_bucket):
             yield bucket, b"".join(by_bucket[bucket])
 
-    def bucket_runs(self, n_buckets: int, threads: int = 1) -> list[tuple]:
-        """Every count added so far, grouped by reducer bucket (``counts.buckets_of``) for
-        :func:`bucket_sums`: ``(starts, keys, hi, lo)`` runs, one from the buffer and one per direction's
-        accumulators (those on ``threads`` threads), bucket ``b``'s rows of a run at
-        ``starts[b]:starts[b + 1]``, keys ascending. Afterwards the accumulators are empty again."""
-        keys, hi, lo = self.buffer.result()
-        buckets = counts.buckets_of(keys, n_buckets)
-        # a stable sort of small integers is a radix sort in numpy (the first iteration's counts all
-        # come through the buffer)
-        order = np.argsort(buckets.astype(np.uint16) if n_buckets <= 1 << 16 else buckets, kind="stable")
-        starts = np.searchsorted(buckets[order], np.arange(n_buckets + 1))
-        runs = [(starts, keys[order], hi[order], lo[order])]
-        runs += map_threads(lambda item: counts.touched_by_bucket(item[1][1], item[1][2], item[0], n_buckets,
-                                                                  item[1][0]),
-                            sorted(self.acc.items()), threads)
+    def bucket_sums(self, bucket: int, n_buckets: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Bucket ``bucket``'s counts (``counts.buckets_of``) summed per key: (keys ascending and
+        distinct, hi, lo), what a reducer that received only this task's :meth:`payloads` folds. Leaves
+        the counts in place (threads may take buckets at once); :meth:`clear` empties them."""
+        if self._buffered is None or len(self._buffered[0]) != n_buckets + 1:
+            keys, hi, lo = self.buffer.result()
+            buckets = counts.buckets_of(keys, n_buckets)
+            # a stable sort of small integers is a radix sort in numpy (the first iteration's counts
+            # all come through the buffer)
+            order = np.argsort(buckets.astype(np.uint16) if n_buckets <= 1 << 16 else buckets, kind="stable")
+            self._buffered = (np.searchsorted(buckets[order], np.arange(n_buckets + 1)),
+                              keys[order], hi[order], lo[order])
+        starts, *buffered = self._buffered
+        runs = [tuple(a[starts[bucket]:starts[bucket + 1]] for a in buffered)]
+        runs += [counts.touched_in_bucket(touched, table_keys, d, n_buckets, acc, bucket)
+                 for d, (acc, touched, table_keys) in sorted(self.acc.items())]
+        return counts.reduce_sorted(*(np.concatenate(column) for column in zip(*runs)))
+
+    def clear(self) -> None:
+        """Empty the counts (after :meth:`bucket_sums`), leaving the accumulators to the worker's next task."""
+        self._buffered = None
         self._release()
-        return runs
 
 
 def part_name(index: int) -> str:
@@ -261,33 +267,22 @@ def write_bucket(lex_url: str, n_parts: int, index: int, keys: np.ndarray, hi: n
     return summary
 
 
-def bucket_sums(runs: list[tuple], bucket: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Bucket ``bucket``'s rows of :meth:`TaskCounts.bucket_runs`, summed per key: (keys ascending and
-    distinct, hi, lo), what a reducer that received only that task's :meth:`TaskCounts.payloads` folds."""
-    parts = [tuple(a[starts[bucket]:starts[bucket + 1]] for a in arrays) for starts, *arrays in runs]
-    return counts.reduce_sorted(*(np.concatenate(column) for column in zip(*parts)))
-
-
 def write_task_table(task: TaskCounts, n_parts: int, *, threads: int, lex_url: str, min_prob: float,
                      prune_below: float | None) -> list[dict]:
     """The M-step done by an iteration's only E-step task (``engine.estep.make_estep``'s ``write_table``):
     its counts are the totals, so it writes the ``n_parts`` bucket files itself, ``threads`` at a time,
-    as the reducers would from its records, with nothing shuffled. Memory: the task's rows twice at
-    most (grouped by bucket, then one bucket's sums per thread). Returns the reducers' summaries; the
-    first one's ``seconds`` includes grouping the counts by bucket."""
-    started = time.perf_counter()
-    runs = task.bucket_runs(n_parts, threads)
-    grouped = time.perf_counter() - started
-
+    as the reducers would from its records, with nothing shuffled, taking one bucket's rows at a time
+    from its accumulators (memory: a few buckets' rows per thread). Returns the reducers' summaries."""
     def write(index: int) -> dict:
         began = time.perf_counter()
-        summary = write_bucket(lex_url, n_parts, index, *bucket_sums(runs, index), min_prob=min_prob,
+        summary = write_bucket(lex_url, n_parts, index, *task.bucket_sums(index, n_parts), min_prob=min_prob,
                                prune_below=prune_below)
         summary["seconds"] = time.perf_counter() - began
         return summary
 
+    task.bucket_sums(0, n_parts)  # groups the buffer's rows once, before the threads start
     summaries = map_threads(write, list(range(n_parts)), threads)
-    summaries[0]["seconds"] += grouped
+    task.clear()
     note_task_memory("reduce")
     return summaries
 

@@ -655,40 +655,37 @@ def touched_rows(touched: np.ndarray, table_keys: np.ndarray, d: int,
     return np.asarray(table_keys, np.int64)[index] + shift, acc[index, 0], acc[index, 1]
 
 
-def touched_by_bucket(touched: np.ndarray, table_keys: np.ndarray, d: int, n_buckets: int,
-                      acc: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-    """The rows :func:`touched_rows` gives, grouped by reducer bucket (:func:`bucket_of_cond`):
-    ``(starts, keys, hi, lo)``, bucket ``b``'s rows at ``starts[b]:starts[b + 1]``, keys ascending
-    within each bucket. Two compiled passes over the touched positions in table order (count, then
-    place), as :func:`encode_touched` makes its segments; memory: the rows, once."""
+def touched_in_bucket(touched: np.ndarray, table_keys: np.ndarray, d: int, n_buckets: int, acc: np.ndarray,
+                      bucket: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The rows :func:`touched_rows` gives that fall in reducer bucket ``bucket`` (:func:`bucket_of_cond`),
+    keys ascending: two compiled passes over the table (count, then copy). Memory: that bucket's rows
+    only. A task that writes every bucket itself takes them one bucket at a time, so its arrays stay
+    bucket-sized (small enough for the C heap to hand back to the next bucket, rather than fresh memory
+    whose first touch page-faults)."""
     table_keys = np.ascontiguousarray(table_keys, np.int64)
-    index = np.flatnonzero(touched)
     n_cond = 0
     if len(table_keys):
         n_cond = int(table_keys.max() >> 32 if d == 0 else (table_keys & 0xFFFFFFFF).max()) + 1
     bucket_of = bucket_of_cond(np.arange(n_cond), d, n_buckets).astype(np.int32)
     shift = (np.int64(d) << np.int64(62)) + (np.int64(2) << np.int64(32))  # table key -> row key
-    starts = np.zeros(n_buckets + 1, np.int64)
-    keys, hi, lo = (np.empty(len(index), np.int64) for _ in range(3))
-    _touched_group(index, table_keys, int(d), bucket_of, shift, np.ascontiguousarray(acc, np.int64),
-                   starts, keys, hi, lo)
-    return starts, keys, hi, lo
+    args = (touched, table_keys, int(d), bucket_of, int(bucket), shift, np.ascontiguousarray(acc, np.int64))
+    keys, hi, lo = (np.empty(_touched_in_bucket(*args, None, None, None), np.int64) for _ in range(3))
+    _touched_in_bucket(*args, keys, hi, lo)
+    return keys, hi, lo
 
 
 @njit(cache=True, nogil=True)
-def _touched_group(index, table_keys, d, bucket_of, shift, acc, starts, keys, hi, lo):  # pragma: no cover
-    for p in index:
-        starts[bucket_of[_cond(table_keys[p], d)] + 1] += 1
-    for b in range(len(starts) - 1):
-        starts[b + 1] += starts[b]
-    at = starts[:-1].copy()
-    for p in index:
-        b = bucket_of[_cond(table_keys[p], d)]
-        i = at[b]
-        at[b] = i + 1
-        keys[i] = table_keys[p] + shift
-        hi[i] = acc[p, 0]
-        lo[i] = acc[p, 1]
+def _touched_in_bucket(touched, table_keys, d, bucket_of, bucket, shift, acc, keys, hi, lo):  # pragma: no cover
+    # keys None: count the bucket's rows; else copy them
+    n = 0
+    for p in range(len(touched)):
+        if touched[p] and bucket_of[_cond(table_keys[p], d)] == bucket:
+            if keys is not None:
+                keys[n] = table_keys[p] + shift
+                hi[n] = acc[p, 0]
+                lo[n] = acc[p, 1]
+            n += 1
+    return n
 
 
 @njit(cache=True, nogil=True, inline="always")

@@ -184,15 +184,15 @@ def test_table_aligned_task_counts_equal_the_plain_buffer():
             assert all(len(run[0]) == 0 for run in as_rows.rows())
     records = list(task.payloads(3))
     # what a reducer folds from the task's records of its bucket, the task's own M-step has at hand
-    runs = by_bucket.bucket_runs(3, threads=2)
     assert sorted(bucket for bucket, _ in records) == [0, 1, 2]
     for bucket, data in records:
         reducer = counts.CountBuffer()
         reducer.add_payload(data)
-        grouped = mstep.bucket_sums(runs, bucket)
+        grouped = by_bucket.bucket_sums(bucket, 3)
         for g, w in zip(grouped, reducer.result()):
             np.testing.assert_array_equal(g, w)
         assert np.all(counts.buckets_of(grouped[0], 3) == bucket)
+    by_bucket.clear()
     assert all(len(run[0]) == 0 for run in by_bucket.rows())  # emptied
     got = [counts.decode_rows(data) for _, data in records]
     k, a, b = (np.concatenate(x) for x in zip(*got))
