@@ -88,6 +88,9 @@ def get_session(master: str | None = "local[*]", conf: dict[str, str] | None = N
     for key, value in settings.items():
         builder = builder.config(key, value)
     spark = builder.getOrCreate()
+    # Python workers only (the environment of Python tasks, not of executor JVMs): one malloc arena, read
+    # by glibc when a worker starts (see engine.tables.keep_freed_memory); spark.executorEnv wins.
+    spark.sparkContext.environment.setdefault("MALLOC_ARENA_MAX", "1")
     spark.sparkContext.setLogLevel(settings.get("spark.log.level", "WARN"))
     _quiet(spark, "org.apache.spark.sql.execution.window.WindowExec")  # vocabulary ids use one global sort
     return spark

@@ -93,3 +93,13 @@ def test_a_cluster_without_stage_level_scheduling_is_a_config_error(spark):
         em.claim_task_cpus(spark, rdd, 2)
     with pytest.raises(ConfigError, match="estepThreads must be a whole number"):
         em.whole_number_setting(em.THREADS_CONF, "0")
+
+
+def test_python_workers_start_with_one_malloc_arena(spark):
+    """A task's threads share one C heap (engine.tables.keep_freed_memory): the sessions this project
+    makes start Python workers with MALLOC_ARENA_MAX=1, which glibc reads once, at a process's start."""
+    import os
+
+    assert spark.sparkContext.environment["MALLOC_ARENA_MAX"] == "1"
+    got = spark.sparkContext.parallelize([0, 1], 2).map(lambda _: os.environ.get("MALLOC_ARENA_MAX")).collect()
+    assert got == ["1", "1"]
