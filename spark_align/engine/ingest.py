@@ -274,10 +274,16 @@ def block_array(column: pa.Array, k: int, name: str) -> np.ndarray:
     (``BLOB_DTYPES``) or, as earlier versions wrote every column, a list."""
     if pa.types.is_binary(column.type) or pa.types.is_large_binary(column.type):
         dtype = BLOB_DTYPES[name]
-        value = column[k]
-        if not value.is_valid:
+        if column.null_count and not column[k].is_valid:
             return np.zeros(0, dtype)
-        out = np.frombuffer(value.as_buffer(), dtype)
+        # straight from the column's buffers: taking the value as a scalar (column[k].as_buffer())
+        # cost 0.4 ms per block grid, 0.2 s per Model 1 iteration at 1M pairs
+        _validity, offsets, data = column.buffers()
+        width = np.dtype(np.int64 if pa.types.is_large_binary(column.type) else np.int32)
+        start, stop = np.frombuffer(offsets, width, count=2, offset=(column.offset + k) * width.itemsize)
+        if stop == start:
+            return np.zeros(0, dtype)
+        out = np.frombuffer(data, np.uint8, count=int(stop - start), offset=int(start)).view(dtype)
         if out.ctypes.data % dtype.itemsize:
             out = out.copy()  # compiled kernels want aligned arrays
         return out.astype(dtype.newbyteorder("="), copy=False)

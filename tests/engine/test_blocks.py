@@ -4,6 +4,7 @@ from __future__ import annotations
 import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
+import pytest
 
 from spark_align.engine import ingest
 from spark_align.kernels import ragged
@@ -86,3 +87,18 @@ def test_row_groups_read_the_same_memory_mapped_and_streamed(tmp_path):
                 assert ids == [[4]]
         finally:
             memory.rm("/read-unit-test", recursive=True)
+
+
+@pytest.mark.parametrize("kind", [pa.binary(), pa.large_binary()])
+def test_block_values_are_read_from_the_column_buffers_sliced_null_empty_or_unaligned(kind):
+    from spark_align.engine.ingest import block_array
+
+    grids = [np.arange(5, dtype="<i4").tobytes(), None, b"", np.arange(7, dtype="<i4").tobytes()]
+    column = pa.array(grids, kind)
+    for start in range(len(grids)):  # batches read from Parquet can be slices of a longer array
+        part = column.slice(start)
+        got = [block_array(part, k, "grid").tolist() for k in range(len(part))]
+        assert got == [np.frombuffer(v, "<i4").tolist() if v else [] for v in grids[start:]]
+    # a value 4 bytes into the data buffer: copied to an aligned array for the compiled kernels
+    keys = block_array(pa.array([b"1234", np.arange(3, dtype="<i8").tobytes()], kind), 1, "dict_keys")
+    assert keys.tolist() == [0, 1, 2] and keys.ctypes.data % 8 == 0 and keys.dtype == np.int64
