@@ -338,6 +338,9 @@ def test_join_and_broadcast_shipping_give_bit_identical_tables_and_pruning(spark
     assert manifest(base_broadcast, "00-ibm1", 2)["metrics"]["forward"]["estep_tasks"] == 4
     # That one task wrote the table itself (nothing shuffled): the reducers' files, byte for byte.
     assert threaded["mstep_by"] == "estep task"
+    # the first iteration, from the constant initial table, runs one thread per task, through reducers
+    first = manifest(str(tmp_path / "threads-3"), "00-ibm1", 1)["metrics"]["forward"]
+    assert (first["estep_threads"], first["estep_tasks"], first["mstep_by"]) == (1, 4, "reducers")
     assert manifest(base_broadcast, "00-ibm1", 2)["metrics"]["forward"]["mstep_by"] == "reducers"
     for stage, iteration in (("00-ibm1", 1), ("00-ibm1", 2), ("01-hmm", 1)):
         assert (manifest(str(tmp_path / "threads-3"), stage, iteration)["table"]["crc32"]
