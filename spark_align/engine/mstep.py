@@ -166,7 +166,17 @@ class TaskCounts:
     def bucket_sums(self, bucket: int, n_buckets: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Bucket ``bucket``'s counts (``counts.buckets_of``) summed per key: (keys ascending and
         distinct, hi, lo), what a reducer that received only this task's :meth:`payloads` folds. Leaves
-        the counts in place (threads may take buckets at once); :meth:`clear` empties them."""
+        the counts in place (threads may take buckets at once, once :meth:`group_buffer` has run);
+        :meth:`clear` empties them."""
+        starts, *buffered = self.group_buffer(n_buckets)
+        runs = [tuple(a[starts[bucket]:starts[bucket + 1]] for a in buffered)]
+        runs += [counts.touched_in_bucket(touched, table_keys, d, n_buckets, acc, bucket)
+                 for d, (acc, touched, table_keys) in sorted(self.acc.items())]
+        return counts.reduce_sorted(*(np.concatenate(column) for column in zip(*runs)))
+
+    def group_buffer(self, n_buckets: int) -> tuple:
+        """The buffer's rows grouped by bucket, worked out on first use: (starts, keys, hi, lo), bucket
+        ``b``'s rows at ``starts[b]:starts[b + 1]``, keys ascending within it."""
         if self._buffered is None or len(self._buffered[0]) != n_buckets + 1:
             keys, hi, lo = self.buffer.result()
             buckets = counts.buckets_of(keys, n_buckets)
@@ -175,11 +185,7 @@ class TaskCounts:
             order = np.argsort(buckets.astype(np.uint16) if n_buckets <= 1 << 16 else buckets, kind="stable")
             self._buffered = (np.searchsorted(buckets[order], np.arange(n_buckets + 1)),
                               keys[order], hi[order], lo[order])
-        starts, *buffered = self._buffered
-        runs = [tuple(a[starts[bucket]:starts[bucket + 1]] for a in buffered)]
-        runs += [counts.touched_in_bucket(touched, table_keys, d, n_buckets, acc, bucket)
-                 for d, (acc, touched, table_keys) in sorted(self.acc.items())]
-        return counts.reduce_sorted(*(np.concatenate(column) for column in zip(*runs)))
+        return self._buffered
 
     def clear(self) -> None:
         """Empty the counts (after :meth:`bucket_sums`), leaving the accumulators to the worker's next task."""
@@ -273,6 +279,7 @@ def write_task_table(task: TaskCounts, n_parts: int, *, threads: int, lex_url: s
     its counts are the totals, so it writes the ``n_parts`` bucket files itself, ``threads`` at a time,
     as the reducers would from its records, with nothing shuffled, taking one bucket's rows at a time
     from its accumulators (memory: a few buckets' rows per thread). Returns the reducers' summaries."""
+
     def write(index: int) -> dict:
         began = time.perf_counter()
         summary = write_bucket(lex_url, n_parts, index, *task.bucket_sums(index, n_parts), min_prob=min_prob,
@@ -280,7 +287,7 @@ def write_task_table(task: TaskCounts, n_parts: int, *, threads: int, lex_url: s
         summary["seconds"] = time.perf_counter() - began
         return summary
 
-    task.bucket_sums(0, n_parts)  # groups the buffer's rows once, before the threads start
+    task.group_buffer(n_parts)  # once, before the threads start
     summaries = map_threads(write, list(range(n_parts)), threads)
     task.clear()
     note_task_memory("reduce")
