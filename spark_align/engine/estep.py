@@ -16,7 +16,8 @@ with the entries its units need, received through the join. Rows are
   finding the blocks' entries in the table (the lookup), ``5`` adding counts into the task's
   accumulators (``4``, ``5`` and ``7`` summed over threads), ``6`` loading the table
   (first task of a Python worker per iteration), ``7`` reading blocks and ``8`` preparing the
-  task's output records (the join path's tasks leave 6 at zero); whole-table path only, per
+  task's output records (``6`` and ``8``, which come before and after the threads share out the
+  units, times the threads, like ``3``; the join path's tasks leave 6 at zero); whole-table path only, per
   direction: ``9`` dictionary keys the lookup had to search for (no usable stored hint,
   ``engine.hints``), ``10`` keys it looked up and ``11`` keys whose stored positions it took as they
   are).
@@ -122,10 +123,11 @@ def make_estep(model, directions: tuple[str, ...], tables_src, dense: dict[str, 
         # Scalars 3-11 in records of their own: the task's wall time (reading, table lookups, kernels,
         # folding, preparing its output) and the parts of it named in the module docstring, the same
         # under every direction, then the direction's lookup counts. With threads, the parts are
-        # summed over them (core seconds) and the wall time is the task's times its threads.
+        # summed over them (core seconds) and the wall time is the task's times its threads, as are the
+        # load's and the output records' (the threads read the table together; the records, one thread).
         values = [(time.perf_counter() - started) * len(loops), sum(lp.lookup_seconds for lp in loops),
-                  sum(lp.add_seconds for lp in loops), load_seconds, sum(lp.read_seconds for lp in loops),
-                  payload_seconds]
+                  sum(lp.add_seconds for lp in loops), load_seconds * len(loops),
+                  sum(lp.read_seconds for lp in loops), payload_seconds * len(loops)]
         per_direction = {d: [sum(lp.searched[d] for lp in loops), sum(lp.keys[d] for lp in loops),
                              sum(lp.trusted[d] for lp in loops)] for d in directions}
         if write_table is None:
