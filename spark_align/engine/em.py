@@ -219,7 +219,7 @@ class Trainer:
         else:
             route_seconds = None
             # The first iteration, from the constant initial table, folds every count into a hash table
-            # (no table-aligned accumulators): on two threads per task that took 30 s against 16 s at 1M
+            # (no table-aligned accumulators): on two threads per task that took 30 s against 24 s at 1M
             # pairs (local[2]), so it runs one thread per task.
             used_threads = threads if state.table_path is not None else 1
             source = tables_mod.table_source(state.table_path, self.directions, src_v, tgt_v)
