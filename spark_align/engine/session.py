@@ -65,7 +65,30 @@ def effective_settings(master: str | None = None, conf: dict[str, str] | None = 
         settings.update(profile.settings)
     settings.update({k: v for k, v in submitted.items() if k != "spark.master"})
     settings.update(conf or {})
+    if one_task_estep(chosen, settings):
+        settings.setdefault(IDLE_WORKERS_CONF, "1")
     return chosen, settings
+
+
+IDLE_WORKERS_CONF = "spark.python.factory.idleWorkerMaxPoolSize"
+
+
+def one_task_estep(master: str, settings: dict[str, str]) -> bool:
+    """Whether a local-mode E-step is one task on every core (``estepThreads`` at least the cores).
+
+    Then only one idle Python worker is kept (:data:`IDLE_WORKERS_CONF`, unless set): Spark hands out
+    its idle workers oldest first, so two would take turns at the iterations' one task, each reading
+    every other table afresh and keeping a table of its own; with one, every iteration's task finds
+    the table it read last, and the other worker's memory is freed. At 1M pairs (local[2], two
+    threads) iterations 1-3 took 19.4, 14.2 and 7.3 s against 23.7, 18.4 and 13.9 s."""
+    from spark_align.engine.em import THREADS_CONF, local_cores
+
+    cores = local_cores(master)
+    try:
+        threads = int(settings.get(THREADS_CONF, "1"))
+    except ValueError:
+        return False  # refused with its reason when training starts
+    return cores is not None and cores > 1 and threads >= cores
 
 
 def get_session(master: str | None = "local[*]", conf: dict[str, str] | None = None,
