@@ -81,14 +81,15 @@ def one_task_estep(master: str, settings: dict[str, str]) -> bool:
     every other table afresh and keeping a table of its own; with one, every iteration's task finds
     the table it read last, and the other worker's memory is freed. At 1M pairs (local[2], two
     threads) iterations 1-3 took 19.4, 14.2 and 7.3 s against 23.7, 18.4 and 13.9 s."""
-    from spark_align.engine.em import THREADS_CONF, local_cores
+    from spark_align.engine.em import THREADS_CONF, estep_tasks, local_cores
 
     cores = local_cores(master)
     try:
         threads = int(settings.get(THREADS_CONF, "1"))
     except ValueError:
         return False  # refused with its reason when training starts
-    return cores is not None and cores > 1 and threads >= cores
+    # the E-step's own rule for its number of tasks, over a corpus of many units
+    return cores is not None and cores > 1 and threads > 1 and estep_tasks(1 << 30, cores, 1, threads, local=True) == 1
 
 
 def get_session(master: str | None = "local[*]", conf: dict[str, str] | None = None,
