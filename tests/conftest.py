@@ -13,8 +13,12 @@ os.environ.setdefault("PYSPARK_PYTHON", sys.executable)
 def spark():
     from spark_align.engine.session import get_session
 
-    session = get_session("local[2]", {"spark.sql.shuffle.partitions": "4",
-                                      "spark.default.parallelism": "2"}, app_name="spark_align-tests")
+    # Idle Python workers: one per core, not local mode's one (engine.session.one_task_estep). Results do
+    # not depend on it; with one, the many small multi-task jobs of the tests fork workers again and
+    # again (the suite took 12 min against 9).
+    session = get_session("local[2]", {"spark.sql.shuffle.partitions": "4", "spark.default.parallelism": "2",
+                                      "spark.python.factory.idleWorkerMaxPoolSize": "2"},
+                          app_name="spark_align-tests")
     yield session
     session.stop()
 

@@ -269,15 +269,16 @@ def test_properties_command_prints_a_spark_submit_properties_file(capsys):
 
 
 def test_a_local_estep_of_one_task_keeps_one_idle_python_worker():
-    """Local mode with estepThreads at least the cores: one E-step task per iteration, which should find
-    the worker holding the last table (Spark hands out idle workers oldest first), so one idle worker is
-    kept; not otherwise, and never over the user's own setting."""
+    """Local mode with estepThreads at least the cores (its default): one E-step task per iteration,
+    which should find the worker holding the last table (Spark hands out idle workers oldest first), so
+    one idle worker is kept; not otherwise, and never over the user's own setting."""
     from spark_align.engine.session import IDLE_WORKERS_CONF, effective_settings
 
     threads = "spark.spark_align.estepThreads"
-    assert effective_settings("local[2]", {threads: "2"})[1][IDLE_WORKERS_CONF] == "1"
-    assert effective_settings("local[2]", {threads: "3"})[1][IDLE_WORKERS_CONF] == "1"
-    for master, conf in (("local[2]", {}), ("local[4]", {threads: "2"}), ("local[2]", {threads: "two"}),
+    for conf in ({}, {threads: "2"}, {threads: "3"}):
+        assert effective_settings("local[2]", conf)[1][IDLE_WORKERS_CONF] == "1", conf
+    for master, conf in (("local[2]", {threads: "1"}), ("local[4]", {threads: "2"}), ("local[2]", {threads: "two"}),
+                         ("local", {}), ("local[1]", {}),
                          ("local-cluster[2,2,1024]", {threads: "2"}), ("spark://host:7077", {threads: "2"})):
         assert IDLE_WORKERS_CONF not in effective_settings(master, conf)[1], (master, conf)
     assert effective_settings("local[2]", {threads: "2", IDLE_WORKERS_CONF: "2"})[1][IDLE_WORKERS_CONF] == "2"

@@ -74,18 +74,22 @@ IDLE_WORKERS_CONF = "spark.python.factory.idleWorkerMaxPoolSize"
 
 
 def one_task_estep(master: str, settings: dict[str, str]) -> bool:
-    """Whether a local-mode E-step is one task on every core (``estepThreads`` at least the cores).
+    """Whether a local-mode E-step is one task on every core (``estepThreads`` at least the cores, as by
+    default: ``engine.em.default_threads``).
 
     Then only one idle Python worker is kept (:data:`IDLE_WORKERS_CONF`, unless set): Spark hands out
     its idle workers oldest first, so two would take turns at the iterations' one task, each reading
     every other table afresh and keeping a table of its own; with one, every iteration's task finds
     the table it read last, and the other worker's memory is freed. At 1M pairs (local[2], two
-    threads) iterations 1-3 took 19.4, 14.2 and 7.3 s against 23.7, 18.4 and 13.9 s."""
-    from spark_align.engine.em import THREADS_CONF, estep_tasks, local_cores
+    threads) iterations 1-3 took 19.4, 14.2 and 7.3 s against 23.7, 18.4 and 13.9 s. The cost falls on
+    jobs of several Python tasks at once (ingestion, the first iteration, the join path, the output),
+    which fork the other worker afresh each time, imports and all: noise in a run of any size, but a
+    test that retrains a small corpus a dozen times on the join path took 104 s against 42 s."""
+    from spark_align.engine.em import THREADS_CONF, default_threads, estep_tasks, local_cores
 
     cores = local_cores(master)
     try:
-        threads = int(settings.get(THREADS_CONF, "1"))
+        threads = int(settings.get(THREADS_CONF, str(default_threads(master))))
     except ValueError:
         return False  # refused with its reason when training starts
     # the E-step's own rule for its number of tasks, over a corpus of many units

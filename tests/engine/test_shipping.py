@@ -312,27 +312,33 @@ def test_join_and_broadcast_shipping_give_bit_identical_tables_and_pruning(spark
     base = str(tmp_path / "base")
     store = RunStore(base)
     store.write_json("encoded.json", dataclasses.asdict(ingest.ingest(spark, cfg, store)))
-    want = _retrain(spark, base, str(tmp_path / "broadcast"), cfg)
-    base_broadcast = str(tmp_path / "broadcast")
-    assert len(want) == 3
-
-    # One E-step task per core instead of two: other task boundaries, the same tables bit for bit.
-    spark.conf.set(em.TASKS_PER_CORE_CONF, "1")
+    # One thread per E-step task (local mode's default is one task on every core): four tasks, reducers.
+    spark.conf.set(em.THREADS_CONF, "1")
     try:
+        want = _retrain(spark, base, str(tmp_path / "broadcast"), cfg)
+        # One E-step task per core instead of two: other task boundaries, the same tables bit for bit.
+        spark.conf.set(em.TASKS_PER_CORE_CONF, "1")
         one_per_core = _retrain(spark, base, str(tmp_path / "one-per-core"), cfg)
     finally:
         spark.conf.unset(em.TASKS_PER_CORE_CONF)
+        spark.conf.unset(em.THREADS_CONF)
+    base_broadcast = str(tmp_path / "broadcast")
+    assert len(want) == 3
+
     assert sorted(one_per_core) == sorted(want) and all(one_per_core[k].equals(want[k]) for k in want)
     # Two and three threads per E-step task (local[2]: one task, its units shared out as each thread
     # is free, one accumulator set per thread, added together): the same tables bit for bit.
     assert len(mstep.block_units(RunStore(base))) == 4  # units enough for three threads
-    for threads in ("2", "3"):
-        spark.conf.set(em.THREADS_CONF, threads)
+    for threads in (None, "3"):  # None: local mode's default, as many as the cores (two)
+        if threads is not None:
+            spark.conf.set(em.THREADS_CONF, threads)
         try:
-            threaded = _retrain(spark, base, str(tmp_path / f"threads-{threads}"), cfg)
+            threaded = _retrain(spark, base, str(tmp_path / f"threads-{threads or 'default'}"), cfg)
         finally:
             spark.conf.unset(em.THREADS_CONF)
         assert sorted(threaded) == sorted(want) and all(threaded[k].equals(want[k]) for k in want), threads
+    by_default = manifest(str(tmp_path / "threads-default"), "00-ibm1", 2)["metrics"]["forward"]
+    assert (by_default["estep_threads"], by_default["estep_tasks"]) == (2, 1)
     threaded = manifest(str(tmp_path / "threads-3"), "00-ibm1", 2)["metrics"]["forward"]
     assert (threaded["estep_threads"], threaded["estep_tasks"]) == (3, 1)
     assert manifest(base_broadcast, "00-ibm1", 2)["metrics"]["forward"]["estep_tasks"] == 4

@@ -16,7 +16,9 @@ from spark_align.errors import ConfigError
 
 
 def test_local_cores_reads_local_masters_only(monkeypatch):
-    monkeypatch.setattr(em.os, "cpu_count", lambda: 6)
+    # local[*]: the CPUs this process may run on (its affinity), as many as Spark's cores where no quota applies
+    monkeypatch.setattr(em.os, "sched_getaffinity", lambda _pid: set(range(6)))
+    monkeypatch.setattr(em.os, "cpu_count", lambda: 64)
     assert [em.local_cores(m) for m in ("local", "local[3]", "local[*]", "local[4,2]", "local[*,3]")] == [1, 3, 6, 4, 6]
     assert [em.local_cores(m) for m in ("local-cluster[2,1,1024]", "spark://h:7077", "yarn", "k8s://x")] == [None] * 4
 
@@ -77,6 +79,15 @@ class _Session:
     def __init__(self, master, values):
         self.conf = _Conf(values)
         self.sparkContext = type("Ctx", (), {"master": master})()
+
+
+def test_threads_per_task_default_to_the_cores_in_local_mode_and_to_one_elsewhere():
+    assert [em.estep_threads(_Session(m, {})) for m in ("local[3]", "local", "local-cluster[2,2,1024]",
+                                                        "spark://h:7077", "yarn")] == [3, 1, 1, 1, 1]
+    assert em.estep_threads(_Session("local[3]", {em.THREADS_CONF: "1"})) == 1
+    assert em.estep_threads(_Session("yarn", {em.THREADS_CONF: "4"})) == 4
+    with pytest.raises(ConfigError, match="estepThreads must be a whole number"):
+        em.estep_threads(_Session("local[3]", {em.THREADS_CONF: "all"}))
 
 
 def test_claiming_more_cores_than_an_executor_has_is_a_config_error():
