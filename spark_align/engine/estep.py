@@ -108,10 +108,11 @@ def make_estep(model, directions: tuple[str, ...], tables_src, dense: dict[str, 
         n_threads = max(1, min(threads, len(units)))
         tables = tables_src.load(n_threads)
         load_seconds = time.perf_counter() - started
-        fs, _root = fsspec.core.url_to_fs(blocks_url)
+        fs, root = fsspec.core.url_to_fs(blocks_url)
         hints_fs, hints_root = fsspec.core.url_to_fs(hints_url) if hints_url else (None, None)
+        mapped_root = mapped_blocks_root(fs, root)
         loops = [_UnitLoop(model, directions, tables, dense, fs, hints_fs, hints_root,
-                           mstep.TaskCounts(tables, reuse=True, slot=i)) for i in range(n_threads)]
+                           mstep.TaskCounts(tables, reuse=True, slot=i), mapped_root) for i in range(n_threads)]
         run_shared(loops, units)
         task = loops[0].task
         for other in loops[1:]:
@@ -174,9 +175,11 @@ class _UnitLoop:
     """One thread's share of a whole-table E-step task: reads units, looks their blocks up, runs the
     kernels and folds the counts into its own ``task`` (``engine.mstep.TaskCounts``), timing each part."""
 
-    def __init__(self, model, directions, tables, dense, fs, hints_fs, hints_root, task) -> None:
+    def __init__(self, model, directions, tables, dense, fs, hints_fs, hints_root, task,
+                 mapped_root: str | None = None) -> None:
         self.model, self.directions, self.tables, self.dense = model, directions, tables, dense
         self.fs, self.hints_fs, self.hints_root, self.task = fs, hints_fs, hints_root, task
+        self.mapped_root = mapped_root
         self.hinted = [d for d in directions if hints_fs is not None and tables[d].constant is None]
         self.lookup_seconds = self.add_seconds = self.read_seconds = 0.0
         self.searched = dict.fromkeys(directions, 0)
@@ -194,7 +197,7 @@ class _UnitLoop:
         trusted = {d for d in hinted if hints_exact_for(stored[d], tables[d])}
         self.lookup_seconds += time.perf_counter() - looked_up
         read_started = time.perf_counter()
-        blocks = read_blocks(fs, path, row_group, with_keys=trusted != set(directions))
+        blocks = read_blocks(fs, path, row_group, with_keys=trusted != set(directions), mapped_root=self.mapped_root)
         self.read_seconds += time.perf_counter() - read_started
         looked_up = time.perf_counter()
         sizes = [block.n_dict for block in blocks]
@@ -210,7 +213,7 @@ class _UnitLoop:
         self.lookup_seconds += time.perf_counter() - looked_up
         if trusted != set(directions) and blocks and blocks[0].dict_keys is None:
             read_started = time.perf_counter()
-            blocks = read_blocks(fs, path, row_group, with_keys=True)
+            blocks = read_blocks(fs, path, row_group, with_keys=True, mapped_root=self.mapped_root)
             self.read_seconds += time.perf_counter() - read_started
         new_points = {d: [] for d in hinted if d not in trusted}  # hints to store again, if need be
         new_found = {d: [] for d in new_points}
@@ -282,14 +285,39 @@ def add_timing(task, directions: tuple[str, ...], values: list[float],
 E_STEP_COLUMNS = ["block_id", "src_len", "src_ids", "tgt_len", "tgt_ids", "dict_keys", "grid"]
 
 
-def read_blocks(fs, path: str, row_group: int, *, with_keys: bool) -> list:
-    """The blocks of one row group of ``encoded/blocks``, as the E-step needs them (``with_keys=False``:
-    without their dictionary keys, for an E-step that knows where they are in the table)."""
-    from spark_align.engine import mstep
+MAPPED_COLUMNS = [c for c in E_STEP_COLUMNS if c != "dict_keys"]
 
-    columns = E_STEP_COLUMNS if with_keys else [c for c in E_STEP_COLUMNS if c != "dict_keys"]
-    return [block for batch in mstep.read_unit(fs, path, row_group, columns=columns)
-            for _block_id, _rows, block in blocks_from_batch(batch)]
+
+def mapped_blocks_root(fs, blocks_root: str) -> str | None:
+    """Where the mapped files of ``encoded/blocks`` (at ``blocks_root`` in ``fs``) go: ``encoded/mapped``
+    on a local file system, None on any other (``engine.mapped``)."""
+    import posixpath
+
+    from fsspec.implementations.local import LocalFileSystem
+
+    if not isinstance(fs, LocalFileSystem):
+        return None
+    return posixpath.join(posixpath.dirname(blocks_root.rstrip("/")), "mapped")
+
+
+def read_blocks(fs, path: str, row_group: int, *, with_keys: bool, mapped_root: str | None = None) -> list:
+    """The blocks of one row group of ``encoded/blocks``, as the E-step needs them (``with_keys=False``:
+    without their dictionary keys, for an E-step that knows where they are in the table).
+
+    ``mapped_root`` (a local directory, ``encoded/mapped``): blocks without their keys come from the row
+    group's mapped file (``engine.mapped``), which a read from Parquet writes where it is missing."""
+    from spark_align.engine import mapped, mstep
+
+    columns = E_STEP_COLUMNS if with_keys else MAPPED_COLUMNS
+    target = None if mapped_root is None else mapped.mapped_path(mapped_root, path, row_group)
+    batches = None
+    if target is not None and not with_keys:
+        batches = mapped.read(target, MAPPED_COLUMNS)
+    if batches is None:
+        batches = list(mstep.read_unit(fs, path, row_group, columns=columns))
+        if target is not None and batches and (not with_keys or not os.path.exists(target)):
+            mapped.write(target, [b.select(MAPPED_COLUMNS) for b in batches])
+    return [block for batch in batches for _block_id, _rows, block in blocks_from_batch(batch)]
 
 
 def hints_exact_for(stored, table) -> bool:

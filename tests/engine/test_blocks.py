@@ -102,3 +102,63 @@ def test_block_values_are_read_from_the_column_buffers_sliced_null_empty_or_unal
     # a value 4 bytes into the data buffer: copied to an aligned array for the compiled kernels
     keys = block_array(pa.array([b"1234", np.arange(3, dtype="<i8").tobytes()], kind), 1, "dict_keys")
     assert keys.tolist() == [0, 1, 2] and keys.ctypes.data % 8 == 0 and keys.dtype == np.int64
+
+
+def test_mapped_blocks_are_written_once_read_in_place_and_a_bad_file_is_ignored(tmp_path):
+    """On a local file system the E-step's blocks come from the row group's mapped Arrow file
+    (engine.mapped), which the first read from Parquet writes: the same arrays as Parquet's; a missing,
+    truncated or foreign file is ignored and written again; other file systems never get one."""
+    import fsspec
+
+    from spark_align.engine import estep, mapped
+
+    rng = np.random.default_rng(7)
+    blocks = [_block(rng) for _ in range(5)]
+    rows = [np.arange(40, dtype=np.int64) + 40 * i for i in range(5)]
+    table = pa.Table.from_batches([ingest.block_batch(i, r, b) for i, (r, b) in enumerate(zip(rows, blocks))])
+    path = tmp_path / "encoded" / "blocks" / "part-0.parquet"
+    path.parent.mkdir(parents=True)
+    pq.write_table(table, path, row_group_size=2, compression="none")
+    local = fsspec.filesystem("file")
+    root = estep.mapped_blocks_root(local, str(path.parent))
+    assert root == str(tmp_path / "encoded" / "mapped")
+    assert estep.mapped_blocks_root(fsspec.filesystem("memory"), "/x/encoded/blocks") is None
+
+    def read_all(with_keys=False):
+        return [b for rg in range(3) for b in estep.read_blocks(local, str(path), rg, with_keys=with_keys,
+                                                                mapped_root=root)]
+
+    def check(got):
+        assert len(got) == 5
+        for a, want in zip(got, blocks):
+            for field in ("src_offsets", "src_ids", "tgt_offsets", "tgt_ids", "grid_offsets", "grid"):
+                np.testing.assert_array_equal(getattr(a, field), getattr(want, field))
+
+    mapped.forget()
+    check(read_all(with_keys=True))  # a read with the keys writes the files too (without the keys)
+    files = sorted(p.name for p in (tmp_path / "encoded" / "mapped").iterdir())
+    assert files == [f"part-0.parquet.rg{i:05d}" for i in range(3)]
+    check(read_all())
+    # read in place: the grid's memory is the map's, not a copy
+    got = estep.read_blocks(local, str(path), 1, with_keys=False, mapped_root=root)
+    assert not got[0].grid.flags.writeable and not got[0].grid.flags.owndata
+
+    target = mapped.mapped_path(root, str(path), 1)
+    mapped.forget()
+    with open(target, "r+b") as fh:
+        fh.truncate(100)
+    assert mapped.read(target, estep.MAPPED_COLUMNS) is None
+    check(read_all())  # read from Parquet and written again
+    assert mapped.read(target, estep.MAPPED_COLUMNS) is not None
+    # a file of the right form but other blocks (a grid too short for its sentences) is not taken
+    mapped.forget()
+    short = table.slice(2, 2).select(estep.MAPPED_COLUMNS).combine_chunks().to_batches()[0]
+    at = short.schema.get_field_index("grid")
+    grid = pa.array([b"\x00" * 8, short.column(at)[1].as_py()], pa.binary())
+    mapped.write(target, [short.set_column(at, "grid", grid)])
+    assert mapped.read(target, estep.MAPPED_COLUMNS) is None
+    # nor one with other columns (the keys included)
+    mapped.write(target, table.slice(2, 2).select(estep.E_STEP_COLUMNS).to_batches())
+    assert mapped.read(target, estep.MAPPED_COLUMNS) is None
+    check(read_all())
+    mapped.forget()
