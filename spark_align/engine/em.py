@@ -63,8 +63,8 @@ def default_threads(master: str) -> int:
 
     In local mode that makes the whole-table E-step one task on every core, which shares the worker's
     one table among its threads and writes the new table itself (nothing shuffled): at 1M pairs
-    (local[2]) 9.0 s an iteration against 10.7 s with one thread per task, and one Python worker at
-    2.0-2.4 GB where two held 1.8 GB each. A cluster keeps one thread per task: more need Spark's
+    (local[2]) 9.0 s a Model 1 iteration against 11.9 s with one thread per task, and one Python
+    worker of 2.4 GB where two held 1.8 GB each. A cluster keeps one thread per task: more need Spark's
     stage-level scheduling, which not every cluster manager offers (:func:`claim_task_cpus`)."""
     return local_cores(master) or 1
 

@@ -6,16 +6,16 @@ columns of 1M pairs that way took 1.3 s of a core per pass in one process; the s
 Arrow IPC files, memory-mapped and kept open, 0.1 s (the kernels then read the grids straight
 from the page cache, in 0.22-0.26 s against 0.35 s from decoded copies). So on a local file
 system the first E-step over a row group also writes it as ``encoded/mapped/<blocks file>.rgNNNNN``
-(one record batch, the columns of ``engine.estep.E_STEP_COLUMNS`` but the dictionary keys, which an
-E-step that takes stored lookup hints does not read), and later ones map that file instead, each
-Python worker keeping its latest maps open (:data:`OPEN_MAPS`).
+(the batches Parquet gave, with the columns of ``engine.estep.E_STEP_COLUMNS`` but the dictionary
+keys, which an E-step that takes stored lookup hints does not read), and later ones map that file
+instead, each Python worker keeping its latest maps open (:data:`OPEN_MAPS`).
 
 The cost is disk space: the link grids a second time, 1.6 GB at 1M pairs (the blocks take 2.7 GB).
 Like the lookup hints (``engine.hints``), a mapped file is a cache: written whole or not at all
-(under a temporary name, then moved into place), named after the blocks file, which is unique to one ingestion, and ignored,
-then written again, if it is missing or does not open as the row group's blocks (other columns,
-another number of blocks, grids whose lengths disagree with the sentence lengths). Removing
-``encoded/mapped`` at any time is safe. Other file systems (object stores, HDFS) cannot be mapped:
+(under a temporary name, then moved into place), named after the blocks file, which is unique to one
+ingestion, and ignored, then written again, if it is missing or does not open as blocks (other
+columns, grids whose lengths disagree with the sentence lengths). Removing ``encoded/mapped`` at any
+time is safe. Other file systems (object stores, HDFS) cannot be mapped:
 their E-step reads Parquet as before.
 """
 from __future__ import annotations
@@ -78,8 +78,8 @@ def write(path: str, batches: list[pa.RecordBatch]) -> None:
 
 def _fits(batch: pa.RecordBatch) -> bool:
     """Whether a batch read from a mapped file holds whole blocks: valid Arrow, and each grid as long as
-    its sentence lengths say (a grid's length is all a damaged file could get wrong unnoticed that
-    would reach past a block's dictionary)."""
+    its sentence lengths say. What a truncated or foreign file gets wrong; the values themselves are
+    taken as they are, as those of the Parquet blocks are."""
     from spark_align.engine.ingest import blocks_from_batch
 
     try:
